@@ -1,0 +1,161 @@
+"""In-memory estimator with scikit-learn's conventions, built from the same cores as a run."""
+
+from __future__ import annotations
+
+import numpy as np
+from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.utils.validation import check_array, check_is_fitted
+
+from eigenstream.core.graph import alpha_normalize, symmetric_affinity
+from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
+from eigenstream.core.neighbors import approximate_knn, exact_knn
+from eigenstream.core.nystrom import nystrom_extend
+from eigenstream.core.spectral import solve_embedding
+from eigenstream.errors import ConfigError, InputError
+
+
+class SpectralMap(TransformerMixin, BaseEstimator):
+    """Diffusion map / Laplacian eigenmap of an in-memory array.
+
+    Same kernel, normalisation, solver and sign rule as ``eigenstream run``; use it for arrays
+    that fit in memory. New rows are placed with the Nystrom extension.
+
+    Parameters
+    ----------
+    n_components : int, default=2
+        Coordinates per row (the trivial constant eigenvector is excluded).
+    n_neighbors : int, default=15
+        Neighbours per row in the kNN graph.
+    bandwidth : "adaptive" or float, default="adaptive"
+        Adaptive: sigma_i = distance to the ``bandwidth_neighbor``-th neighbour
+        (Zelnik-Manor & Perona 2004); a number: one global sigma, kernel exp(-d^2/sigma^2).
+    bandwidth_neighbor : int, default=7
+    alpha : float, default=1.0
+        Density normalisation of diffusion maps (Coifman & Lafon 2006), in [0, 1].
+    diffusion_time : float, default=1.0
+        Coordinates are lambda^t psi; 0 gives Laplacian-eigenmap coordinates.
+    metric : {"euclidean", "cosine"}, default="euclidean"
+    exact_max_rows : int, default=20000
+        Up to this many rows the neighbours are exact; above, pynndescent is used.
+    tol : float, default=1e-8
+        Eigensolver tolerance.
+    random_state : int, default=0
+
+    Attributes
+    ----------
+    embedding_ : ndarray of shape (n_samples, n_components)
+    eigenvalues_ : ndarray of shape (n_components,)
+    residuals_ : ndarray of shape (n_components,)
+    """
+
+    def __init__(self, n_components=2, *, n_neighbors=15, bandwidth="adaptive",
+                 bandwidth_neighbor=7, alpha=1.0, diffusion_time=1.0, metric="euclidean",
+                 exact_max_rows=20_000, tol=1e-8, random_state=0):
+        self.n_components = n_components
+        self.n_neighbors = n_neighbors
+        self.bandwidth = bandwidth
+        self.bandwidth_neighbor = bandwidth_neighbor
+        self.alpha = alpha
+        self.diffusion_time = diffusion_time
+        self.metric = metric
+        self.exact_max_rows = exact_max_rows
+        self.tol = tol
+        self.random_state = random_state
+
+    def _check_settings(self, n: int) -> None:
+        k = self.n_neighbors
+        if not isinstance(k, int | np.integer) or k < 1:
+            raise ConfigError(f"`n_neighbors` must be an integer >= 1; got {k!r}.")
+        if n < k + 1:
+            raise InputError(f"`n_neighbors` = {k} needs at least {k + 1} rows; got {n}.")
+        if not 0.0 <= float(self.alpha) <= 1.0:
+            raise ConfigError(f"`alpha` must be a number in [0, 1]; got {self.alpha!r}.")
+        if self.n_components < 1 or self.n_components >= n - 1:
+            raise ConfigError(
+                f"`n_components` must be in [1, {n - 2}] for {n} rows; got {self.n_components!r}."
+            )
+        if self.bandwidth == "adaptive" and self.bandwidth_neighbor > k:
+            raise ConfigError("`bandwidth_neighbor` must not exceed `n_neighbors`.")
+
+    def _sigma(self, distances: np.ndarray) -> np.ndarray:
+        if self.bandwidth != "adaptive":
+            return np.full(distances.shape[0], float(self.bandwidth))
+        return adaptive_bandwidths(distances, neighbor=self.bandwidth_neighbor)
+
+    def fit(self, X, y=None):
+        """Build the graph of ``X`` and compute its embedding."""
+        X = check_array(X, dtype=np.float64)
+        n = X.shape[0]
+        self._check_settings(n)
+        k = self.n_neighbors
+        if n <= self.exact_max_rows:
+            idx, dist = exact_knn(X, k, metric=self.metric, query_start=0)
+        else:
+            idx, dist = approximate_knn(X, k, metric=self.metric, seed=self.random_state)
+        try:
+            sigma = fill_zero_bandwidths(self._sigma(dist))
+        except ValueError:
+            raise InputError("All rows are identical; there is no structure to embed.") from None
+        K = symmetric_affinity(idx, gaussian_weights(dist, sigma, sigma[idx]), n, self_loops=True)
+        norm = alpha_normalize(K, float(self.alpha))
+        emb = solve_embedding(
+            K.__matmul__, norm.scale, norm.degrees, components=self.n_components,
+            diffusion_time=float(self.diffusion_time), tol=self.tol, max_matvecs=200_000,
+            seed=self.random_state,
+        )
+        self.train_ = X
+        self.sigma_ = sigma
+        self.radius_ = dist[:, k - 1]
+        self.q_ = norm.q
+        self.degrees_ = norm.degrees
+        self.psi_ = emb.psi
+        self.eigenvalues_ = emb.eigenvalues
+        self.residuals_ = emb.residuals
+        self.embedding_ = emb.coordinates
+        self.n_features_in_ = X.shape[1]
+        return self
+
+    def fit_transform(self, X, y=None):
+        """Fit and return the embedding of the training rows."""
+        return self.fit(X).embedding_
+
+    def transform(self, X):
+        """Place new rows on the fitted map with the Nystrom extension."""
+        check_is_fitted(self, "psi_")
+        X = check_array(X, dtype=np.float64)
+        if X.shape[1] != self.n_features_in_:
+            raise InputError(
+                f"X has {X.shape[1]} columns but the map was fitted on {self.n_features_in_}."
+            )
+        dist, idx = kernel_rows(X, self.train_, self.radius_, self.n_neighbors, self.metric)
+        sigma_new = self._new_sigma(dist)
+        return nystrom_extend(
+            dist, idx, sigma_new, self.sigma_, self.q_, self.degrees_, self.psi_,
+            self.eigenvalues_, alpha=float(self.alpha), diffusion_time=float(self.diffusion_time),
+        )
+
+    def _new_sigma(self, dist: np.ndarray) -> np.ndarray:
+        if self.bandwidth != "adaptive":
+            return np.full(dist.shape[0], float(self.bandwidth))
+        positive = np.where(dist > 0, dist, np.inf)
+        ordered = np.sort(positive, axis=1)
+        sigma = ordered[:, self.bandwidth_neighbor - 1]
+        return np.where(np.isfinite(sigma), sigma, np.min(self.sigma_))
+
+
+def kernel_rows(X, train, radius, k, metric):
+    """Training rows that share a kernel edge with each new row, as (distances, indices).
+
+    A new row y is linked, like a training row, to its k nearest training rows (at positive
+    distance), to every training row x_j that would count y among its own k neighbours
+    (d(y, x_j) <= r_k(x_j), the reverse edges of the union rule) and to exact copies (distance 0,
+    the self loop). Entries not linked are given distance +inf (kernel weight 0).
+    """
+    n = train.shape[0]
+    candidates = min(n, 3 * k + 1)
+    idx, dist = exact_knn(train, candidates, metric=metric, query=X)
+    positive_rank = np.cumsum(dist > 0, axis=1)
+    forward = (dist > 0) & (positive_rank <= k)
+    reverse = dist <= radius[idx]
+    linked = forward | reverse | (dist == 0)
+    return np.where(linked, dist, np.inf), idx

@@ -1,0 +1,43 @@
+"""Extend stage: map coordinates for every row, written block by block.
+
+In full-graph mode every row is a graph vertex, so the coordinates are the diffusion
+coordinates lambda^t psi of the solve stage. Output: ``extend/data.zarr/coordinates``
+(n, components), float64, in input order.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from eigenstream.core.spectral import diffusion_weights
+from eigenstream.io import store
+from eigenstream.pipeline import Stage, StageContext
+
+
+def _run(ctx: StageContext) -> dict[str, Any]:
+    config = ctx.config
+    solved = ctx.input_store("solve")
+    psi = solved["psi"]
+    weights = diffusion_weights(
+        np.asarray(solved["eigenvalues"][...]), config.embedding.diffusion_time
+    )
+    n, c = psi.shape
+    out = ctx.store(mode="w")
+    chunk = config.run.chunk_rows
+    coords = store.create_array(out, "coordinates", shape=(n, c), chunk_rows=chunk, dtype=np.float64)
+    with ctx.progress(n, "rows") as bar:
+        for s, e in store.block_ranges(n, chunk):
+            coords[s:e] = np.asarray(psi[s:e]) * weights
+            bar.update(e - s)
+    return {"rows": n, "components": c, "diffusion_time": config.embedding.diffusion_time}
+
+
+STAGE = Stage(
+    name="extend",
+    version=1,
+    config_keys=("embedding.diffusion_time",),
+    inputs=("solve",),
+    run=_run,
+)

@@ -1,0 +1,69 @@
+"""Report stage: the PNG map, the eigenvalue plot and ``manifest.json`` in the work directory."""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import numpy as np
+
+from eigenstream.pipeline import Stage, StageContext, peak_memory_bytes, versions
+from eigenstream.plots import plot_map, plot_spectrum
+from eigenstream.workdir import write_json_atomic
+
+MAP_FILE = "map.png"
+SPECTRUM_FILE = "spectrum.png"
+MANIFEST_FILE = "manifest.json"
+
+
+def _run(ctx: StageContext) -> dict[str, Any]:
+    config, wd = ctx.config, ctx.workdir
+    coords = ctx.input_store("extend")["coordinates"]
+    solved = ctx.input_store("solve")
+    read_group = ctx.input_store("read")
+    eigenvalues = np.asarray(solved["eigenvalues"][...])
+    residuals = np.asarray(solved["residuals"][...])
+    color = np.asarray(read_group["color"][...]) if "color" in read_group else None
+    n, c = coords.shape
+    with ctx.progress(3, "files") as bar:
+        if c >= 2:
+            plot_map(coords, wd.path / MAP_FILE, color=color, color_label=config.map.color_column,
+                     title=f"{n:,} rows", seed=config.run.seed)
+        bar.update(1)
+        plot_spectrum(eigenvalues, wd.path / SPECTRUM_FILE, residuals=residuals)
+        bar.update(1)
+        manifest = {
+            "config": config.to_dict(),
+            "versions": versions(),
+            "seed": config.run.seed,
+            "rows": n,
+            "components": c,
+            "eigenvalues": eigenvalues.tolist(),
+            "residuals": residuals.tolist(),
+            "stages": ctx.upstream,
+            "timings": {name: s.get("seconds") for name, s in _stage_states(wd).items()},
+            "peak_memory": peak_memory_bytes(),
+            "written": time.time(),
+            "files": {"map": MAP_FILE if c >= 2 else None, "spectrum": SPECTRUM_FILE},
+        }
+        write_json_atomic(wd.path / MANIFEST_FILE, manifest)
+        bar.update(1)
+    return {"map": MAP_FILE if c >= 2 else None, "spectrum": SPECTRUM_FILE, "manifest": MANIFEST_FILE}
+
+
+def _stage_states(wd) -> dict[str, dict[str, Any]]:
+    out = {}
+    for name in ("read", "neighbors", "affinity", "solve", "extend"):
+        state = wd.stage_state(name)
+        if state:
+            out[name] = state
+    return out
+
+
+STAGE = Stage(
+    name="report",
+    version=1,
+    config_keys=("map.color_column",),
+    inputs=("extend", "read"),
+    run=_run,
+)

@@ -1,0 +1,11 @@
+"""Shared fixtures: a seeded random generator and small real input files."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    return np.random.default_rng(20261202)

@@ -1,0 +1,80 @@
+"""Configuration parsing and validation: every refusal names the key and what to do."""
+
+from __future__ import annotations
+
+import pytest
+
+from eigenstream.config import Config, apply_overrides, load_config
+from eigenstream.errors import ConfigError
+
+
+def write(tmp_path, text: str):
+    path = tmp_path / "cfg.toml"
+    path.write_text(text)
+    return path
+
+
+def test_defaults_and_relative_paths(tmp_path):
+    cfg = load_config(write(tmp_path, '[input]\npath = "rows.npy"\n'))
+    assert cfg.input.path == str((tmp_path / "rows.npy").resolve())
+    assert cfg.run.workdir == str((tmp_path / "eigenstream-work").resolve())
+    assert cfg.graph.neighbors == 15 and cfg.graph.metric == "euclidean"
+    assert cfg.kernel.bandwidth == "adaptive" and cfg.kernel.bandwidth_neighbor == 7
+    assert cfg.kernel.alpha == 1.0 and cfg.embedding.components == 2
+    assert cfg.input.resolved_format == "npy"
+
+
+def test_round_trip_is_lossless(tmp_path):
+    cfg = load_config(write(tmp_path, '[input]\npath = "a.csv"\ncolumns = ["x", "y"]\n'
+                                      '[kernel]\nbandwidth = 0.5\n'))
+    again = Config.from_dict(cfg.to_dict())
+    assert again == cfg
+
+
+@pytest.mark.parametrize(
+    ("text", "words"),
+    [
+        ('[input]\npath = "a.npy"\n[graph]\nneighbours = 5\n', ["[graph] neighbours", "neighbors"]),
+        ('[input]\npath = "a.npy"\n[grpah]\n', ["[grpah]", "graph"]),
+        ('[input]\npath = "a.npy"\n[graph]\nneighbors = 0\n', ["[graph] neighbors", ">= 1", "0"]),
+        ('[input]\npath = "a.npy"\n[graph]\nneighbors = "ten"\n', ["[graph] neighbors", "'ten'"]),
+        ('[input]\npath = "a.npy"\n[kernel]\nalpha = 1.5\n', ["[kernel] alpha", "[0.0, 1.0]"]),
+        ('[input]\npath = "a.npy"\n[kernel]\nbandwidth = -1\n', ["[kernel] bandwidth", "positive"]),
+        ('[input]\npath = "a.npy"\n[embedding]\ndiffusion_time = -1\n', ["diffusion_time"]),
+        ('[input]\npath = "a.npy"\n[embedding]\ncomponents = 0\n', ["[embedding] components"]),
+        ('[input]\npath = "a.npy"\n[graph]\nmetric = "manhattan"\n', ["[graph] metric", "cosine"]),
+        ('[graph]\nneighbors = 5\n', ["[input]", "path"]),
+        ('[input]\npath = "a.npy"\n[graph]\nneighbors = 5\n', ["bandwidth_neighbor", "neighbors"]),
+        ("[input\n", ["not valid TOML"]),
+    ],
+)
+def test_bad_values_are_refused_with_the_key_named(tmp_path, text, words):
+    with pytest.raises(ConfigError) as info:
+        load_config(write(tmp_path, text))
+    message = str(info.value)
+    assert "\n" not in message
+    for word in words:
+        assert word in message
+
+
+def test_unknown_suffix_names_the_option(tmp_path):
+    cfg = load_config(write(tmp_path, '[input]\npath = "rows.xyz"\n'))
+    with pytest.raises(ConfigError, match=r"\[input\] format"):
+        cfg.input.resolved_format
+
+
+def test_overrides_parse_toml_literals_and_refuse_unknown_keys():
+    data = {"input": {"path": "a.npy"}}
+    merged = apply_overrides(data, ["graph.neighbors=10", "graph.metric=cosine", "kernel.alpha=0.5"])
+    assert merged["graph"] == {"neighbors": 10, "metric": "cosine"}
+    assert merged["kernel"]["alpha"] == 0.5
+    assert data == {"input": {"path": "a.npy"}}
+    with pytest.raises(ConfigError, match="Did you mean `neighbors`"):
+        apply_overrides(data, ["graph.neighbor=3"])
+    with pytest.raises(ConfigError, match="section.key=value"):
+        apply_overrides(data, ["neighbors=3"])
+
+
+def test_missing_config_file(tmp_path):
+    with pytest.raises(ConfigError, match="not found"):
+        load_config(tmp_path / "nope.toml")
