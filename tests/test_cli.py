@@ -84,8 +84,12 @@ def test_export_in_input_order_with_ids(finished, fmt):
         assert table.column("rid").to_pylist() == ids.tolist()
         assert np.allclose(np.c_[[table.column(i).to_numpy() for i in range(1, 4)]].T, coords)
     else:
-        lines = target.read_text().splitlines()
-        assert lines[0].startswith("rid") and lines[1].startswith("r0000")
+        import csv
+
+        rows = list(csv.reader(target.read_text().splitlines()))
+        assert rows[0] == ["rid", "component_1", "component_2", "component_3"]
+        assert [r[0] for r in rows[1:]] == ids.tolist()
+        assert np.allclose(np.array([r[1:] for r in rows[1:]], dtype=float), coords)
 
 
 def test_python_m_and_console_script_agree(finished):

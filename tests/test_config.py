@@ -60,7 +60,7 @@ def test_bad_values_are_refused_with_the_key_named(tmp_path, text, words):
 def test_unknown_suffix_names_the_option(tmp_path):
     cfg = load_config(write(tmp_path, '[input]\npath = "rows.xyz"\n'))
     with pytest.raises(ConfigError, match=r"\[input\] format"):
-        cfg.input.resolved_format
+        _ = cfg.input.resolved_format
 
 
 def test_overrides_parse_toml_literals_and_refuse_unknown_keys():

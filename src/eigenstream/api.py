@@ -56,7 +56,7 @@ class Result:
     @property
     def ids(self) -> np.ndarray | None:
         group = store.open_group(self._wd.stage_store("read"), mode="r")
-        return np.asarray(group["ids"][...]) if "ids" in group else None
+        return store.read_labels(group["ids"]) if "ids" in group else None
 
     @property
     def manifest(self) -> dict[str, Any]:

@@ -94,7 +94,7 @@ def _cmd_status(args) -> int:
         extra = f"  {seconds:.1f} s" if isinstance(seconds, int | float) else ""
         print(f"  {name:<10} {state}{extra}")
     if info["eigenvalues"]:
-        pairs = ", ".join(f"{v:.6f} (r={r:.1e})" for v, r in zip(info["eigenvalues"], info["residuals"]))
+        pairs = ", ".join(f"{v:.6f} (r={r:.1e})" for v, r in zip(info["eigenvalues"], info["residuals"], strict=True))
         print(f"rows: {info['rows']}  eigenvalues: {pairs}")
     return EXIT_OK
 

@@ -56,13 +56,15 @@ def make_client(cfg: ClusterConfig) -> Iterator[Client]:
             finally:
                 client.close()
             return
+        # Worker processes talk over loopback only; threads use in-process transport.
+        network = {"host": "127.0.0.1"} if cfg.processes else {}
         cluster = LocalCluster(
             n_workers=local_worker_count(cfg),
             threads_per_worker=cfg.threads_per_worker,
             processes=cfg.processes,
             dashboard_address=cfg.dashboard_address,
-            host="127.0.0.1",
             silence_logs=logging.ERROR,
+            **network,
         )
         client = Client(cluster)
         log.info("dask dashboard: %s", client.dashboard_link)

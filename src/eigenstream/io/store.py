@@ -67,6 +67,12 @@ def read_rows(array: zarr.Array, start: int, stop: int) -> np.ndarray:
     return np.asarray(array[start:stop])
 
 
+def read_labels(array: zarr.Array) -> np.ndarray:
+    """A stored label or id column as numpy values (text as Python str objects)."""
+    values = np.asarray(array[...])
+    return values.astype(object) if values.dtype.kind == "T" else values
+
+
 def block_ranges(n_rows: int, block_rows: int) -> list[tuple[int, int]]:
     """Consecutive ``(start, stop)`` row ranges of at most ``block_rows`` rows."""
     return [(s, min(s + block_rows, n_rows)) for s in range(0, n_rows, block_rows)]

@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 
-from eigenstream.core.spectral import diffusion_weights
+from eigenstream.core.spectral import time_power
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
 
@@ -20,7 +20,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     config = ctx.config
     solved = ctx.input_store("solve")
     psi = solved["psi"]
-    weights = diffusion_weights(
+    weights = time_power(
         np.asarray(solved["eigenvalues"][...]), config.embedding.diffusion_time
     )
     n, c = psi.shape

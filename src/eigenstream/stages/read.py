@@ -67,7 +67,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
                 bad = bad_value_mask(values)
                 if bad.any():
                     if config.run.on_bad_rows == "refuse":
-                        raise InputError(describe_bad_value(block, columns, src.path))
+                        raise InputError(describe_bad_value(block, columns, src.path, fmt=src.format))
                     numbers = block.start + 1 + np.flatnonzero(bad)
                     dropped.extend((ids[bad] if ids is not None else numbers).tolist())
                     keep = ~bad
@@ -77,7 +77,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
                 m = values.shape[0]
                 rows[kept : kept + m] = values.astype(dtype, copy=False)
                 _write_side(group, sinks, "ids", ids, kept, n, chunk)
-                for name, col in extra.items():
+                for col in extra.values():
                     _write_side(group, sinks, "color", col, kept, n, chunk)
                 moments.update(values)
                 kept += m

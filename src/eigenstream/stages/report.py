@@ -7,6 +7,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext, peak_memory_bytes, versions
 from eigenstream.plots import plot_map, plot_spectrum
 from eigenstream.workdir import write_json_atomic
@@ -23,7 +24,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     read_group = ctx.input_store("read")
     eigenvalues = np.asarray(solved["eigenvalues"][...])
     residuals = np.asarray(solved["residuals"][...])
-    color = np.asarray(read_group["color"][...]) if "color" in read_group else None
+    color = store.read_labels(read_group["color"]) if "color" in read_group else None
     n, c = coords.shape
     with ctx.progress(3, "files") as bar:
         if c >= 2:

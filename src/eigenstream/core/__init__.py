@@ -1,0 +1,1 @@
+"""Pure numerical core: neighbours, kernels, graph normalization, eigenpairs, Nystrom extension."""

@@ -1,0 +1,1 @@
+"""Test helpers: samplers of manifolds with known spectra and comparison assertions."""

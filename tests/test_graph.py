@@ -1,0 +1,76 @@
+"""Affinity symmetrization, alpha-normalization and connectivity against dense formulas."""
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+
+from eigenstream.core.graph import alpha_normalize, connected_components, symmetric_affinity
+from eigenstream.core.kernels import adaptive_bandwidths, gaussian_weights
+from eigenstream.core.neighbors import exact_knn
+from eigenstream.errors import InputError
+
+
+def _knn_kernel(n=150, k=6, seed=0):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, 2))
+    idx, dist = exact_knn(X, k)
+    sigma = adaptive_bandwidths(dist, neighbor=3)
+    return idx, gaussian_weights(dist, sigma, sigma[idx])
+
+
+def test_union_rule_and_self_loops():
+    # Union ("OR") symmetrization K = max(W, W^T): von Luxburg 2007, "A tutorial on spectral
+    # clustering", section 2.2; self loop K_ii = 1 = dense Gaussian at distance 0 (Coifman & Lafon 2006).
+    idx, w = _knn_kernel()
+    n = idx.shape[0]
+    W = np.zeros((n, n))
+    W[np.repeat(np.arange(n), idx.shape[1]), idx.ravel()] = w.ravel()
+    K = symmetric_affinity(idx, w, n, self_loops=True)
+    assert sp.issparse(K) and K.format == "csr" and K.dtype == np.float64
+    assert K.indptr.dtype == np.int64 and K.indices.dtype == np.int64
+    np.testing.assert_array_equal(K.toarray(), np.maximum(W, W.T) + np.eye(n))
+    K0 = symmetric_affinity(idx, w, n, self_loops=False)
+    np.testing.assert_array_equal(K0.toarray(), np.maximum(W, W.T))
+    assert K0.diagonal().max() == 0.0
+
+
+def test_alpha_normalization_matches_dense_definition():
+    # Coifman & Lafon, ACHA 21(1) 2006: K^(a) = Q^-a K Q^-a, d = K^(a) 1, A = D^-1/2 K^(a) D^-1/2.
+    idx, w = _knn_kernel(seed=1)
+    n = idx.shape[0]
+    K = symmetric_affinity(idx, w, n)
+    Kd = K.toarray()
+    for alpha in (0.0, 0.5, 1.0):
+        g = alpha_normalize(K, alpha)
+        q = Kd.sum(axis=1)
+        Ka = Kd / np.outer(q**alpha, q**alpha)
+        d = Ka.sum(axis=1)
+        A = Ka / np.sqrt(np.outer(d, d))
+        np.testing.assert_allclose(g.q, q, rtol=1e-13)
+        np.testing.assert_allclose(g.degrees, d, rtol=1e-13)
+        np.testing.assert_allclose(g.volume, d.sum(), rtol=1e-13)
+        np.testing.assert_allclose(
+            g.scale[:, None] * Kd * g.scale[None, :], A, rtol=1e-12, atol=1e-15
+        )
+        # Random-walk matrix P = D^-1 K^(a) is row-stochastic.
+        np.testing.assert_allclose((Ka / d[:, None]).sum(axis=1), 1.0, rtol=1e-13)
+        g2 = alpha_normalize(lambda x: K @ x, alpha, n=n)
+        np.testing.assert_allclose(g2.scale, g.scale, rtol=1e-14)
+
+
+def test_isolated_vertex_is_reported():
+    K = sp.csr_matrix(np.array([[0.0, 1.0, 0.0], [1.0, 0.0, 0.0], [0.0, 0.0, 0.0]]))
+    with pytest.raises(InputError, match="Row 2"):
+        alpha_normalize(K, 0.5)
+
+
+def test_connected_components_of_two_blobs():
+    # Chung 1997: the multiplicity of eigenvalue 1 of P equals the number of components; here
+    # just the component count of two far-apart blobs with k smaller than a blob.
+    rng = np.random.default_rng(2)
+    X = np.vstack([rng.normal(size=(60, 2)), rng.normal(size=(40, 2)) + 100.0])
+    idx, dist = exact_knn(X, 5)
+    K = symmetric_affinity(idx, np.exp(-(dist**2)), 100)
+    count, labels = connected_components(K)
+    assert count == 2
+    assert len(set(labels[:60])) == 1 and len(set(labels[60:])) == 1 and labels[0] != labels[60]

@@ -1,0 +1,99 @@
+"""Exact and approximate kNN against scikit-learn's brute-force search."""
+
+import numpy as np
+import pytest
+from sklearn.datasets import load_digits
+from sklearn.neighbors import NearestNeighbors
+
+from eigenstream.core.neighbors import approximate_knn, drop_self, exact_knn, knn_recall
+
+
+def _with_duplicates(seed=0):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(400, 6))
+    X[50:70] = X[3]  # 21 copies of row 3: more copies than k
+    X[100:104] = X[7]
+    X[200] = X[201]
+    return X
+
+
+def _assert_same_lists(idx, dist, ref_idx, ref_dist):
+    """Equal distances, and equal neighbour sets where the order is decided by a distance gap
+    (scikit-learn orders exact ties arbitrarily; our rule is smaller index first)."""
+    np.testing.assert_allclose(dist, ref_dist, rtol=0, atol=1e-12)
+    k = idx.shape[1]
+    for r in range(idx.shape[0]):
+        assert set(idx[r][dist[r] < dist[r, -1]]) == set(ref_idx[r][ref_dist[r] < ref_dist[r, -1]])
+        assert len(set(idx[r])) == k
+
+
+@pytest.mark.parametrize("metric", ["euclidean", "cosine"])
+def test_exact_matches_sklearn_brute(metric):
+    # Reference: scikit-learn NearestNeighbors(algorithm="brute").kneighbors() with no query,
+    # which also leaves each point out of its own list by index.
+    X = _with_duplicates()
+    k = 15
+    idx, dist = exact_knn(X, k, metric=metric)
+    ref_d, ref_i = (
+        NearestNeighbors(n_neighbors=k, algorithm="brute", metric=metric).fit(X).kneighbors()
+    )
+    assert idx.dtype == np.int64 and dist.dtype == np.float64 and idx.shape == (400, k)
+    _assert_same_lists(idx, dist, ref_i, ref_d)
+    assert not np.any(idx == np.arange(400)[:, None])  # never itself, even among 21 copies
+    # Ties go to the smaller index: the copies of row 3 list the other copies in index order.
+    copies = np.r_[3, 50:70]
+    assert np.array_equal(idx[50], np.setdiff1d(copies, [50])[:k])
+    assert np.all(dist[50] == 0.0)
+    assert np.all(np.diff(dist, axis=1) >= 0)
+
+
+def test_query_start_excludes_self_by_index_and_blocks_agree():
+    X = _with_duplicates(1)
+    full_i, full_d = exact_knn(X, 10)
+    part_i, part_d = exact_knn(X, 10, query=X[40:120], query_start=40)
+    assert np.array_equal(part_i, full_i[40:120])
+    assert np.array_equal(part_d, full_d[40:120])
+    # Without query_start a query row that is also a data row finds itself at distance 0.
+    own_i, own_d = exact_knn(X, 1, query=X[5:6])
+    assert own_i[0, 0] == 5 and own_d[0, 0] == 0.0
+
+
+def test_cosine_zero_rows_are_at_distance_one():
+    # Convention (scikit-learn's cosine_distances does the same): a zero row has cos = 0.
+    X = np.array([[0.0, 0.0], [1.0, 0.0], [2.0, 0.0], [0.0, 3.0], [0.0, 0.0]])
+    idx, dist = exact_knn(X, 2, metric="cosine")
+    assert np.array_equal(idx[0], [1, 2]) and np.array_equal(dist[0], [1.0, 1.0])
+    assert idx[1, 0] == 2 and dist[1, 0] == 0.0
+    ref = NearestNeighbors(n_neighbors=2, algorithm="brute", metric="cosine").fit(X).kneighbors()[0]
+    np.testing.assert_allclose(dist, ref, atol=1e-12)
+
+
+def test_drop_self_handles_missing_self_and_recall_counts():
+    idx = np.array([[0, 5, 6], [7, 8, 9], [4, 2, 3]])
+    dist = np.array([[0.0, 1, 2], [1, 2, 3], [0.5, 0.0, 1]])
+    out_i, out_d = drop_self(idx, dist)
+    assert np.array_equal(out_i, [[5, 6], [7, 8], [4, 3]])
+    assert np.array_equal(out_d, [[1, 2], [1, 2], [0.5, 1]])
+    assert knn_recall(np.array([[1, 2], [3, 4]]), np.array([[2, 1], [3, 5]])) == 0.75
+
+
+@pytest.fixture(scope="module")
+def digits_graphs():
+    # pynndescent compiles for ~50 s on first use in a process: one fixture, one test.
+    X = load_digits().data.astype(np.float64)  # ships with scikit-learn, 1797 x 64
+    approx = approximate_knn(X, 15, seed=0, n_jobs=1)
+    exact = exact_knn(X, 15)
+    return X, approx, exact
+
+
+def test_approximate_knn_recall_on_digits(digits_graphs):
+    X, (a_idx, a_dist), (e_idx, e_dist) = digits_graphs
+    assert a_idx.dtype == np.int64 and a_dist.dtype == np.float64 and a_idx.shape == (1797, 15)
+    assert not np.any(a_idx == np.arange(1797)[:, None])
+    assert np.all(np.diff(a_dist, axis=1) >= -1e-6)
+    # Reported distances are true distances of the listed pairs (pynndescent works in float32).
+    true = np.linalg.norm(X[a_idx] - X[:, None, :], axis=2)
+    np.testing.assert_allclose(a_dist, true, rtol=1e-5)
+    # NN-descent: "typically > 90 % recall" (Dong, Charikar & Li, WWW 2011); 0.95 bar is
+    # common practice for a 1797-row set.
+    assert knn_recall(a_idx, e_idx) >= 0.95
