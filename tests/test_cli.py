@@ -6,6 +6,7 @@ import json
 import subprocess
 import sys
 
+import h5py
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -116,16 +117,28 @@ def test_bad_inputs_fail_cleanly(tmp_path):
     np.save(tmp_path / "nan.npy", X)
     np.save(tmp_path / "tiny.npy", rng.standard_normal((5, 3)))
     np.save(tmp_path / "flat.npy", rng.standard_normal(50))
+    np.save(tmp_path / "empty.npy", np.zeros((0, 3)))
+    (tmp_path / "text.csv").write_text("a,b\n1,2\n" * 1 + "".join(f"{i},x{i}\n" for i in range(30)))
+    with h5py.File(tmp_path / "two.h5", "w") as fh:
+        fh["alpha"] = rng.standard_normal((40, 3))
+        fh["beta"] = rng.standard_normal((40, 3))
     cases = [
         ('path = "missing.npy"', 3, ["missing.npy", "not found"]),
         ('path = "rows.xyz"', 2, ["[input] format"]),
         ('path = "nan.npy"', 3, ["nan.npy", "row 42", "on_bad_rows"]),
         ('path = "tiny.npy"', 3, ["5 rows", "[graph] neighbors"]),
         ('path = "flat.npy"', 3, ["flat.npy", "2-D"]),
+        ('path = "empty.npy"', 3, ["empty.npy"]),
+        ('path = "text.csv"', 3, ["text.csv", "b"]),
+        ('path = "two.h5"\ndataset = "gamma"', 3, ["gamma", "alpha", "beta"]),
+        ('path = "tiny.npy"', 2, ["[kernel] alpha"], "kernel.alpha=2"),
+        ('path = "nan.npy"', 2, ["[graph] neighbors"], "graph.neighbors=0"),
+        ('path = "tiny.npy"', 2, ["[embedding] components"],
+         "graph.neighbors=2", "kernel.bandwidth_neighbor=1", "embedding.components=4"),
     ]
-    for inp, expected, words in cases:
+    for inp, expected, words, *overrides in cases:
         cfg = write_config(tmp_path, inp)
-        code, _, err = cli("run", cfg)
+        code, _, err = cli("run", cfg, *[a for o in overrides for a in ("--set", o)])
         _assert_clean_failure(code, err, expected, *words)
         code, out, _ = cli("status", tmp_path / "work", "--json")
         if code == 0:

@@ -92,6 +92,19 @@ def _check_coords(coords: Any) -> Any:
     return coords
 
 
+class _ColumnPair:
+    """Two chosen columns of a row-sliceable (n, k) array, shown as an (n, 2) array."""
+
+    def __init__(self, coords: Any, columns: tuple[int, int]):
+        self._coords, self._columns = coords, columns
+        self.shape = (coords.shape[0], 2)
+
+    def __getitem__(self, key):
+        rows = key[0] if isinstance(key, tuple) else key
+        block = np.asarray(self._coords[rows], dtype=np.float64)
+        return block[:, list(self._columns)]
+
+
 def _read_rows(coords: Any, start: int, stop: int) -> np.ndarray:
     """Rows start..stop-1 of the first two columns as float64."""
     return np.asarray(coords[start:stop, :2], dtype=np.float64)
@@ -251,6 +264,7 @@ def _draw_map(
     max_points: int = 200_000,
     seed: int = 0,
     block_rows: int = _BLOCK_ROWS,
+    labels: tuple[str, str] = ("component 1", "component 2"),
 ) -> Figure:
     """Build the map figure (see :func:`plot_map`)."""
     coords = _check_coords(coords)
@@ -337,8 +351,8 @@ def _draw_map(
         notes.append(f"{dropped:,} rows with non-finite coordinates not shown")
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
-    ax.set_xlabel("component 1")
-    ax.set_ylabel("component 2")
+    ax.set_xlabel(labels[0])
+    ax.set_ylabel(labels[1])
     if title:
         ax.set_title(title)
     # Notes go under the axes, clear of the data.
@@ -358,8 +372,9 @@ def plot_map(
     title: str | None = None,
     max_points: int = 200_000,
     seed: int = 0,
+    components: tuple[int, int] = (1, 2),
 ) -> Path:
-    """Draw the first two embedding coordinates as a picture file.
+    """Draw two embedding coordinates (the first two by default) as a picture file.
 
     Parameters
     ----------
@@ -380,6 +395,8 @@ def plot_map(
         of this many rows is drawn on top of the density of all rows.
     seed : int, default 0
         Seed of that sample and of the drawing order.
+    components : (int, int), default (1, 2)
+        Which coordinates to draw, counted from 1 as on the axis labels.
 
     Returns
     -------
@@ -391,8 +408,16 @@ def plot_map(
     Up to 20 000 rows, every row is drawn as a point. Beyond that, the map shows the
     count of rows per hexagonal cell on a log scale, computed from all rows.
     """
+    coords = _check_coords(coords)
+    if tuple(components) != (1, 2):
+        if max(components) > coords.shape[1] or min(components) < 1:
+            raise InputError(
+                f"components {tuple(components)} not available: the map has {coords.shape[1]}"
+            )
+        coords = _ColumnPair(coords, (components[0] - 1, components[1] - 1))
     fig = _draw_map(
         coords,
+        labels=(f"component {components[0]}", f"component {components[1]}"),
         color=color,
         color_label=color_label,
         title=title,
