@@ -21,7 +21,7 @@ demo: $(VENV)/.installed
 	$(VENV)/bin/eigenstream demo
 
 test: $(VENV)/.test-installed
-	$(VENV)/bin/ruff check src tests bench
+	$(VENV)/bin/ruff check .
 	$(PY) -m pytest
 
 clean:

@@ -129,18 +129,19 @@ def test_bad_inputs_fail_cleanly(tmp_path):
         ('path = "tiny.npy"', 3, ["5 rows", "[graph] neighbors"]),
         ('path = "flat.npy"', 3, ["flat.npy", "2-D"]),
         ('path = "empty.npy"', 3, ["empty.npy"]),
-        ('path = "text.csv"', 3, ["text.csv", "b"]),
+        ('path = "text.csv"\ncolumns = ["a", "b"]', 3, ["text.csv", "b"]),
         ('path = "two.h5"\ndataset = "gamma"', 3, ["gamma", "alpha", "beta"]),
         ('path = "tiny.npy"', 2, ["[kernel] alpha"], "kernel.alpha=2"),
         ('path = "nan.npy"', 2, ["[graph] neighbors"], "graph.neighbors=0"),
         ('path = "tiny.npy"', 2, ["[embedding] components"],
          "graph.neighbors=2", "kernel.bandwidth_neighbor=1", "embedding.components=4"),
     ]
-    for inp, expected, words, *overrides in cases:
+    for number, (inp, expected, words, *overrides) in enumerate(cases):
         cfg = write_config(tmp_path, inp)
+        overrides = [f'run.workdir="work{number}"', *overrides]
         code, _, err = cli("run", cfg, *[a for o in overrides for a in ("--set", o)])
         _assert_clean_failure(code, err, expected, *words)
-        code, out, _ = cli("status", tmp_path / "work", "--json")
+        code, out, _ = cli("status", tmp_path / f"work{number}", "--json")
         if code == 0:
             assert json.loads(out)["complete"] is False
 

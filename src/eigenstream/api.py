@@ -85,7 +85,9 @@ def open_result(workdir: str | Path) -> Result:
     return Result(Path(workdir).resolve())
 
 
-def run(config: Config | dict | str | Path, *, overrides=(), progress: bool = True) -> Result:
+def run(
+    config: Config | dict | str | Path, *, overrides=(), progress: bool = True, fresh: bool = False
+) -> Result:
     """Run ``config`` end to end (reusing finished stages) and return its :class:`Result`.
 
     Parameters
@@ -96,6 +98,8 @@ def run(config: Config | dict | str | Path, *, overrides=(), progress: bool = Tr
         ``section.key=value`` strings applied on top, as ``--set`` does.
     progress : bool, default=True
         Show progress bars on stderr.
+    fresh : bool, default=False
+        Discard whatever an earlier run left in the work directory first.
     """
-    workdir = run_pipeline(config, overrides=overrides, show_progress=progress)
+    workdir = run_pipeline(config, overrides=overrides, show_progress=progress, fresh=fresh)
     return open_result(workdir)

@@ -38,6 +38,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", help="TOML configuration file")
     p.add_argument("--set", dest="overrides", action="append", default=[],
                    metavar="SECTION.KEY=VALUE", help="override one config value (repeatable)")
+    p.add_argument("--fresh", action="store_true",
+                   help="discard earlier work in the work directory (says what) and start again")
 
     p = sub.add_parser("status", help="show what a work directory holds")
     p.add_argument("workdir")
@@ -66,7 +68,7 @@ def _setup_logging(quiet: bool) -> None:
 def _cmd_run(args) -> int:
     from eigenstream.api import run
 
-    result = run(args.config, overrides=args.overrides, progress=not args.quiet)
+    result = run(args.config, overrides=args.overrides, progress=not args.quiet, fresh=args.fresh)
     _print_outputs(result.workdir)
     return EXIT_OK
 

@@ -8,6 +8,7 @@ The run record (``run.json``) says ``complete`` only after every stage is done.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import json
 import logging
@@ -26,13 +27,15 @@ from tqdm.auto import tqdm
 
 from eigenstream import __version__
 from eigenstream.config import Config, coerce_config
-from eigenstream.errors import EigenstreamError
+from eigenstream.errors import CheckpointError, EigenstreamError
 from eigenstream.io import store
 from eigenstream.workdir import Workdir
 
 log = logging.getLogger(__name__)
 
 SAMPLE_BYTES = 1 << 20
+OUTPUT_FILES = ("run.json", "manifest.json", "map.png", "map-season.png", "spectrum.png")
+_STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
 
 
 @dataclass(frozen=True)
@@ -194,19 +197,55 @@ def run_pipeline(
     *,
     overrides: list[str] | tuple[str, ...] = (),
     show_progress: bool = True,
+    fresh: bool = False,
 ) -> Path:
     """Run every stage of ``config`` in its work directory and return the directory.
 
-    Finished stages whose fingerprints still match are reused.
+    Finished stages whose fingerprints still match are reused. ``fresh=True`` discards
+    everything an earlier run left in the work directory first (and says what).
     """
-    from eigenstream.cluster import make_client
     from eigenstream.stages.read import preflight
 
     config = coerce_config(config, overrides)
     preflight(config)
     workdir = Workdir(config.run.workdir)
     workdir.create()
-    with workdir.locked(), _run_record(workdir, config) as record:
+    with workdir.locked():
+        if fresh:
+            _discard(workdir)
+        else:
+            _refuse_other_input(workdir, config)
+        _execute(workdir, config, show_progress)
+    return workdir.path
+
+
+def _discard(workdir: Workdir) -> None:
+    names = [s.name for s in stages() if workdir.stage_dir(s.name).exists()]
+    files = [f for f in OUTPUT_FILES if (workdir.path / f).exists()]
+    if names or files:
+        log.info("--fresh: discarding %s in %s", ", ".join(names + files), workdir.path)
+    for name in names:
+        workdir.clear_stage(name)
+    for name in files:
+        (workdir.path / name).unlink()
+
+
+def _refuse_other_input(workdir: Workdir, config: Config) -> None:
+    record = workdir.read_run()
+    if not record:
+        return
+    previous = record.get("config", {}).get("input", {}).get("path")
+    if previous and previous != config.input.path:
+        raise CheckpointError(
+            f"Work directory {str(workdir.path)!r} holds a run of another input ({previous}); "
+            "rerun with --fresh to discard it, or choose another `[run] workdir`."
+        )
+
+
+def _execute(workdir: Workdir, config: Config, show_progress: bool) -> None:
+    from eigenstream.cluster import make_client
+
+    with _run_record(workdir, config) as record:
         timings: dict[str, float] = {}
         fingerprints: dict[str, str] = {}
         summaries: dict[str, dict[str, Any]] = {}
@@ -221,10 +260,11 @@ def run_pipeline(
                 if state and state.get("state") == "done" and state.get("fingerprint") == fp:
                     log.info("stage %s: reusing finished output", stage.name)
                     summaries[stage.name] = state.get("summary", {})
-                    timings[stage.name] = 0.0
+                    timings[stage.name] = state.get("seconds", 0.0)
                     continue
                 ctx = StageContext(config, workdir, client, stage.name, summaries, show_progress)
-                summaries[stage.name], timings[stage.name] = _run_stage(stage, ctx, fp)
+                with _storage_errors(stage.name, workdir):
+                    summaries[stage.name], timings[stage.name] = _run_stage(stage, ctx, fp)
         record.update(
             state="complete",
             finished=time.time(),
@@ -233,7 +273,21 @@ def run_pipeline(
             peak_memory=peak_memory_bytes(),
         )
         workdir.write_run(record)
-    return workdir.path
+
+
+@contextmanager
+def _storage_errors(name: str, workdir: Workdir) -> Iterator[None]:
+    """Turn a full disk or a read-only file system into a one-line CheckpointError."""
+    try:
+        yield
+    except OSError as exc:
+        if isinstance(exc, EigenstreamError) or exc.errno not in _STORAGE_ERRNOS:
+            raise
+        raise CheckpointError(
+            f"Cannot write stage {name!r} in {str(workdir.path)!r}: {exc.strerror or exc}; "
+            "free space (or fix permissions) and run the same command again: finished stages "
+            "are kept."
+        ) from None
 
 
 def _run_stage(stage: Stage, ctx: StageContext, fp: str) -> tuple[dict[str, Any], float]:
@@ -291,8 +345,6 @@ def status(workdir: str | Path) -> dict[str, Any]:
 
 
 def raise_missing(wd: Workdir) -> None:
-    from eigenstream.errors import CheckpointError
-
     if not wd.path.exists():
         raise CheckpointError(f"Work directory {str(wd.path)!r} does not exist; check the path.")
     raise CheckpointError(

@@ -81,8 +81,8 @@ class LanczosState:
     cut : float
         The count-th eigenvalue when the current check round began (0 in the main search).
     dropped : float
-        Sum of the norms of the couplings set to zero when pairs were locked; added to the
-        residual estimates as a bound on the error this introduced.
+        Sum of the norms of the couplings set to zero when pairs were locked: a bound on the
+        perturbation this introduced, added to the reported residuals.
     """
 
     ritz_vectors: np.ndarray
@@ -138,7 +138,7 @@ class LanczosState:
                 f"Lanczos state lacks {', '.join(missing)}; delete the solver checkpoint to "
                 "restart the eigensolver from scratch."
             )
-        parts = {k: np.array(arrays[k], dtype=np.float64) for k in _ARRAY_KEYS}
+        parts = {k: np.array(arrays[k], dtype=np.float64, order="C") for k in _ARRAY_KEYS}
         numbers = {
             k: float(scalars[k]) if k in _FLOAT_KEYS else int(scalars[k]) for k in _SCALAR_KEYS
         }
@@ -218,8 +218,8 @@ def thick_restart_lanczos(
         basis_size, tol and check_multiplicity the result is bit-identical to that of the
         uninterrupted run.
     on_restart : callable, optional
-        Called with the new :class:`LanczosState` after every restart; the solver never
-        modifies a state after handing it out.
+        Called with the new :class:`LanczosState` after every restart, e.g. to store it. The
+        solver keeps using the state's arrays, so the callback must not modify them.
     rng : Generator or int, optional
         Source of the default start vector and of the seed for random directions (seed 0
         when None, for reproducibility). Ignored when resuming.
@@ -286,7 +286,10 @@ def thick_restart_lanczos(
         basis, T, beta, used = _lanczos_cycle(apply, state, m, budget)
         new = _restart(basis, T, beta, keep, state, used, target, tol)
         if used < m - state.ritz_values.size:  # the budget ran out inside the cycle
-            if new.converged >= target and new.check_round == 0 and not check_multiplicity:
+            finished = new.converged >= target and not (
+                check_multiplicity and _worth_another_round(new, count, tol)
+            )
+            if finished:
                 return _result_from_state(new, count)
             raise _not_converged(new, count, tol, state)
         state = new
@@ -308,13 +311,15 @@ def _worth_another_round(state: LanczosState, count: int, tol: float) -> bool:
 def _lock_and_probe(state: LanczosState, count: int) -> LanczosState:
     """Keep the leading count pairs as exact (coupling 0) and continue from a random vector.
 
-    Zeroing the couplings perturbs A by at most their norm (tracked in ``dropped``); the
-    Krylov space of the new vector is then blind to nothing the locked vectors miss.
+    Zeroing the couplings perturbs A by at most their norm (tracked in ``dropped``). The
+    random vector has a component along every direction orthogonal to the locked vectors,
+    missed copies of repeated eigenvalues included, so its Krylov space can find them.
     """
-    Y = np.array(state.ritz_vectors[:, :count])
-    probe = _fresh_direction(Y.T, state.seed, (_TAG_CHECK, state.restarts, state.check_round))
+    # A fixed memory layout keeps the BLAS rounding of a resumed run identical.
+    rows = np.ascontiguousarray(state.ritz_vectors[:, :count].T)
+    probe = _fresh_direction(rows, state.seed, (_TAG_CHECK, state.restarts, state.check_round))
     return LanczosState(
-        ritz_vectors=Y,
+        ritz_vectors=np.ascontiguousarray(rows.T),
         ritz_values=state.ritz_values[:count].copy(),
         coupling=np.zeros(count),
         residual=probe,
@@ -457,7 +462,7 @@ def _restart(
     theta, W = theta[order], W[:, order]
     k = min(keep, j)
     new = LanczosState(
-        ritz_vectors=(W[:, :k].T @ basis[:j]).T,
+        ritz_vectors=basis[:j].T @ W[:, :k],
         ritz_values=theta[:k].copy(),
         coupling=beta * W[-1, :k],
         residual=basis[j].copy(),
@@ -477,7 +482,7 @@ def _restart(
 
 def _leading_converged(state: LanczosState, limit: int, tol: float) -> int:
     """Number of leading pairs (at most ``limit``) with |s_i| <= tol * ||A|| estimate."""
-    s = np.abs(state.coupling[:limit]) + state.dropped
+    s = np.abs(state.coupling[:limit])
     ok = s <= tol * state.norm_estimate
     return int(s.size if ok.all() else np.argmin(ok))
 
@@ -498,8 +503,8 @@ def _not_converged(
     err = NotConverged(
         f"Lanczos stopped at the budget of {best.matvecs} matvecs ({best.restarts} restarts) "
         f"with {min(best.converged, count)} of {count} eigenpairs at tol={tol:g}: raise "
-        "`[solver] max_matvecs` (the solve resumes from its last restart), loosen "
-        "`[solver] tol`, or use a larger basis.",
+        "`[solver] max_matvecs` (a saved solver state can be resumed), loosen "
+        "`[solver] tol`, or use a larger Lanczos basis.",
         eigenvalues=best.ritz_values[:count].copy(),
         eigenvectors=np.array(best.ritz_vectors[:, :count], order="C"),
     )
@@ -516,6 +521,4 @@ def _dense_pairs(matvec: Callable, n: int, count: int) -> LanczosResult:
     order = np.argsort(-values, kind="stable")[:count]
     values, vectors = values[order], vectors[:, order]
     residuals = np.linalg.norm(dense @ vectors - vectors * values, axis=0)
-    return LanczosResult(
-        values=values, vectors=vectors, matvecs=n, restarts=0, residuals=residuals
-    )
+    return LanczosResult(values=values, vectors=vectors, matvecs=n, restarts=0, residuals=residuals)

@@ -288,10 +288,10 @@ def _closer_counts(A, i, d2_row, thr, tol) -> np.ndarray:
     k = thr.size
     cand = np.flatnonzero(d2_row < thr[-1] + tol)  # rows beyond this cannot beat any threshold
     vals = d2_row[cand]
-    # Row l is surely closer than thresholds m >= hi and surely not closer than those m < lo.
+    # Row l is surely closer than every threshold m >= hi (thr[m] > vals + tol); it is surely
+    # not closer than the lower ones unless the largest of them, thr[hi - 1], lies within tol.
     hi = np.searchsorted(thr, vals + tol, side="right")
-    lo = np.searchsorted(thr, vals - tol, side="right")
-    unsure = lo < hi
+    unsure = (hi > 0) & (thr[np.maximum(hi - 1, 0)] > vals - tol)
     if np.any(unsure):
         cols = cand[unsure]
         diff = A[cols] - A[i]

@@ -22,29 +22,44 @@ from eigenstream.pipeline import Stage, StageContext
 _EXACT_BLOCK_ELEMENTS = 1 << 24
 
 
-def load_features(rows_path: str, mean: np.ndarray | None, scale: np.ndarray | None) -> np.ndarray:
-    """The feature matrix as the neighbour search sees it (standardised when asked)."""
+def load_features(rows_path: str, mean: np.ndarray, scale: np.ndarray) -> np.ndarray:
+    """The feature matrix as the neighbour search sees it: (rows - mean) / scale."""
     rows = np.asarray(store.open_group(rows_path, mode="r")["rows"][...])
-    if mean is None:
-        return rows
     return ((rows - mean) / scale).astype(rows.dtype, copy=False)
 
 
-def _exact_block(rows_path, out_path, start, stop, k, metric, mean, scale) -> tuple[int, int]:
-    data = load_features(rows_path, mean, scale)
+def feature_transform(group, standardize: bool) -> tuple[np.ndarray, np.ndarray, float]:
+    """Shift, per-column scale and distance unit of the features.
+
+    Without standardisation the rows are only divided by a power of two near their
+    root-mean-square value: exact in floating point, and it keeps squared distances of
+    tables holding 1e30 or 1e-30 inside float32 range. Distances are multiplied back by
+    that unit, so they are in the input's units.
+    """
+    mean, std = np.asarray(group["mean"][...]), np.asarray(group["std"][...])
+    if standardize:
+        shift, scale = standardizer(mean, std)
+        return shift, scale, 1.0
+    rms = float(np.sqrt(np.mean(std**2 + mean**2)))
+    unit = 2.0 ** np.round(np.log2(rms)) if rms > 0 and np.isfinite(rms) else 1.0
+    return np.zeros_like(mean), np.full_like(mean, unit), unit
+
+
+def _exact_block(rows_path, out_path, start, stop, k, metric, shift, scale, unit):
+    data = load_features(rows_path, shift, scale)
     idx, dist = exact_knn(data, k, metric=metric, query=data[start:stop], query_start=start)
     out = store.open_group(out_path, mode="r+")
     out["indices"][start:stop] = idx
-    out["distances"][start:stop] = dist
+    out["distances"][start:stop] = dist * (unit if metric == "euclidean" else 1.0)
     return start, stop
 
 
-def _approximate_all(rows_path, out_path, k, metric, seed, n_jobs, mean, scale) -> int:
-    data = load_features(rows_path, mean, scale)
+def _approximate_all(rows_path, out_path, k, metric, seed, n_jobs, shift, scale, unit) -> int:
+    data = load_features(rows_path, shift, scale)
     idx, dist = approximate_knn(data, k, metric=metric, seed=seed, n_jobs=n_jobs)
     out = store.open_group(out_path, mode="r+")
     out["indices"][...] = idx
-    out["distances"][...] = dist
+    out["distances"][...] = dist * (unit if metric == "euclidean" else 1.0)
     return data.shape[0]
 
 
@@ -62,9 +77,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     read_group = ctx.input_store("read")
     n = read_group["rows"].shape[0]
     k = config.graph.neighbors
-    mean = scale = None
-    if config.prep.standardize:
-        mean, scale = standardizer(read_group["mean"][...], read_group["std"][...])
+    shift, scale, unit = feature_transform(read_group, config.prep.standardize)
     method = choose_method(config, n)
     block = max(1, min(config.run.chunk_rows, _EXACT_BLOCK_ELEMENTS // max(n, 1)))
     if method == "approximate":
@@ -78,8 +91,8 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         ranges = store.block_ranges(n, block)
         futures = [
             client.submit(
-                _exact_block, rows_path, out_path, s, e, k, config.graph.metric, mean, scale,
-                pure=False,
+                _exact_block, rows_path, out_path, s, e, k, config.graph.metric, shift, scale,
+                unit, pure=False,
             )
             for s, e in ranges
         ]
@@ -91,11 +104,11 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         n_jobs = config.cluster.threads_per_worker
         fut = client.submit(
             _approximate_all, rows_path, out_path, k, config.graph.metric, config.run.seed,
-            n_jobs, mean, scale, pure=False,
+            n_jobs, shift, scale, unit, pure=False,
         )
         with ctx.progress(n, "rows") as bar:
             bar.update(fut.result())
-    return {"method": method, "neighbors": k, "rows": n, "block_rows": block}
+    return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": unit}
 
 
 def _as_completed(futures):
