@@ -218,7 +218,9 @@ def recommend(
     m = x.shape[0]
     grid = sorted({int(k) for k in neighbors_grid if 2 <= int(k) <= m - 1})
     if not grid:
-        raise ValueError(f"neighbors_grid must hold integers in [2, {m - 1}]; got {neighbors_grid}.")
+        raise ValueError(
+            f"neighbors_grid must hold integers in [2, {m - 1}]; got {neighbors_grid}."
+        )
     kmax = max(grid[-1], 20)
     if m <= kmax:
         raise InputError(
@@ -344,7 +346,7 @@ def _choose_neighbors(grid: list[int], components: dict[int, int], dim: float) -
 
 
 def _choose_bandwidth(dist, dim, neighbors, bw_neighbor, region, growth) -> tuple[Any, str]:
-    """"adaptive" for uneven density, else a global sigma (see :func:`recommend`)."""
+    """Pick "adaptive" for uneven density, else a global sigma (see :func:`recommend`)."""
     r_bw = dist[:, bw_neighbor - 1]
     r_bw = r_bw[r_bw > 0]
     # Under the Poisson model the volume ~ r_K^d of the K-th neighbour ball is Gamma(K).

@@ -13,12 +13,14 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.core.components import bridge, closest_pairs
 from eigenstream.core.graph import alpha_normalize, connected_components, symmetric_affinity
 from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
 from eigenstream.errors import InputError
 from eigenstream.io import store
 from eigenstream.io.graphstore import write_csr
 from eigenstream.pipeline import Stage, StageContext
+from eigenstream.stages.neighbors import feature_transform, load_features
 
 log = logging.getLogger(__name__)
 
@@ -51,8 +53,11 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         K = symmetric_affinity(indices, weights, n, self_loops=True)
         del weights
         bar.update(1)
-        norm = alpha_normalize(K, config.kernel.alpha)
         count, labels = connected_components(K)
+        bridges: list = []
+        if count > 1:
+            K, bridges, weight = _bridge(ctx, K, labels)
+        norm = alpha_normalize(K, config.kernel.alpha)
         bar.update(1)
         out = ctx.store(mode="w")
         write_csr(out, K)
@@ -68,17 +73,31 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     sizes = np.sort(np.bincount(labels))[::-1]
     if count > 1:
         log.warning(
-            "the affinity graph has %d connected components (largest sizes %s); the map "
-            "cannot place them relative to each other. Raise `[graph] neighbors` to connect them.",
+            "the affinity graph has %d connected components (largest sizes %s); each smaller one "
+            "was bridged to the largest by its closest pair of rows, so the map shows them as "
+            "separate groups whose distances mean nothing. Raise `[graph] neighbors` to connect "
+            "them from the data.",
             count, sizes[:5].tolist(),
         )
     return {
         "nnz": int(K.nnz),
         "connected_components": int(count),
         "component_sizes": sizes[:20].tolist(),
+        "bridges": [[int(a), int(b), float(d)] for a, b, d in bridges],
         "volume": float(norm.volume),
         "sigma_quantiles": np.quantile(sigma, [0.0, 0.5, 1.0]).tolist(),
     }
+
+
+def _bridge(ctx: StageContext, K, labels):
+    """Link every smaller component to the largest (policy: docs/method.md, section 7)."""
+    read_group = ctx.input_store("read")
+    shift, scale, _ = feature_transform(read_group, ctx.config.prep.standardize)
+    data = load_features(str(ctx.workdir.stage_store("read")), shift, scale)
+    pairs = closest_pairs(data, labels, metric=ctx.config.graph.metric,
+                          rng=np.random.default_rng(ctx.config.run.seed))
+    K, weight = bridge(K, pairs)
+    return K, pairs, weight
 
 
 STAGE = Stage(
