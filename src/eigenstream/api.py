@@ -86,7 +86,12 @@ def open_result(workdir: str | Path) -> Result:
 
 
 def run(
-    config: Config | dict | str | Path, *, overrides=(), progress: bool = True, fresh: bool = False
+    config: Config | dict | str | Path,
+    *,
+    overrides=(),
+    progress: bool = True,
+    fresh: bool = False,
+    verify: bool = False,
 ) -> Result:
     """Run ``config`` end to end (reusing finished stages) and return its :class:`Result`.
 
@@ -100,6 +105,9 @@ def run(
         Show progress bars on stderr.
     fresh : bool, default=False
         Discard whatever an earlier run left in the work directory first.
+    verify : bool, default=False
+        Read back every finished block of an unfinished stage before reusing it.
     """
-    workdir = run_pipeline(config, overrides=overrides, show_progress=progress, fresh=fresh)
+    workdir = run_pipeline(config, overrides=overrides, show_progress=progress, fresh=fresh,
+                           verify_all=verify)
     return open_result(workdir)

@@ -40,6 +40,8 @@ def build_parser() -> argparse.ArgumentParser:
                    metavar="SECTION.KEY=VALUE", help="override one config value (repeatable)")
     p.add_argument("--fresh", action="store_true",
                    help="discard earlier work in the work directory (says what) and start again")
+    p.add_argument("--verify", action="store_true",
+                   help="read back every finished block of an unfinished stage before reusing it")
 
     p = sub.add_parser("status", help="show what a work directory holds")
     p.add_argument("workdir")
@@ -68,7 +70,8 @@ def _setup_logging(quiet: bool) -> None:
 def _cmd_run(args) -> int:
     from eigenstream.api import run
 
-    result = run(args.config, overrides=args.overrides, progress=not args.quiet, fresh=args.fresh)
+    result = run(args.config, overrides=args.overrides, progress=not args.quiet, fresh=args.fresh,
+                 verify=args.verify)
     _print_outputs(result.workdir)
     return EXIT_OK
 
@@ -91,9 +94,15 @@ def _cmd_status(args) -> int:
     print(f"state:          {info['state']}{' (complete)' if info['complete'] else ''}")
     if info.get("error"):
         print(f"error:          {info['error']}")
+    fresh = info.get("up_to_date") or {}
     for name, state in info["stages"].items():
         seconds = info["timings"].get(name)
         extra = f"  {seconds:.1f} s" if isinstance(seconds, int | float) else ""
+        if name in info.get("blocks", {}):
+            b = info["blocks"][name]
+            extra += f"  ({b['done']} of {b['total'] if b['total'] is not None else '?'} blocks)"
+        if state != "pending" and fresh and not fresh.get(name, True):
+            extra += "  (settings or input changed since: will be recomputed)"
         print(f"  {name:<10} {state}{extra}")
     if info["eigenvalues"]:
         pairs = ", ".join(f"{v:.6f} (r={r:.1e})" for v, r in zip(info["eigenvalues"], info["residuals"], strict=True))

@@ -183,14 +183,17 @@ class EmbeddingConfig:
 class SolverConfig:
     """Eigensolver accuracy and effort (section ``[solver]``)."""
 
+    method: str = "lanczos"
     tol: float = 1e-8
     max_matvecs: int = 200_000
-    extra_vectors: int = 20
+    check_multiplicity: bool = True
 
     def __post_init__(self) -> None:
+        _choice("solver", "method", self.method, ("lanczos", "arpack"))
         object.__setattr__(self, "tol", _number("solver", "tol", self.tol, 0.0, 0.1))
         _int("solver", "max_matvecs", self.max_matvecs, 10)
-        _int("solver", "extra_vectors", self.extra_vectors, 2)
+        if not isinstance(self.check_multiplicity, bool):
+            raise _fail("solver", "check_multiplicity", "true or false", self.check_multiplicity)
 
 
 @dataclass(frozen=True)
@@ -202,6 +205,7 @@ class RunConfig:
     chunk_rows: int = 50_000
     on_bad_rows: str = "refuse"
     dtype: str = "float32"
+    checkpoint_seconds: float = 60.0
 
     def __post_init__(self) -> None:
         if not isinstance(self.workdir, str) or not self.workdir:
@@ -210,6 +214,10 @@ class RunConfig:
         _int("run", "chunk_rows", self.chunk_rows, 1)
         _choice("run", "on_bad_rows", self.on_bad_rows, ("refuse", "drop"))
         _choice("run", "dtype", self.dtype, ("float32", "float64"))
+        object.__setattr__(
+            self, "checkpoint_seconds",
+            _number("run", "checkpoint_seconds", self.checkpoint_seconds, 0.0),
+        )
 
 
 @dataclass(frozen=True)

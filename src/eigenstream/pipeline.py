@@ -26,6 +26,7 @@ from typing import Any
 from tqdm.auto import tqdm
 
 from eigenstream import __version__
+from eigenstream.checkpoint import STOP, stop_on_signals, verified_blocks
 from eigenstream.config import Config, coerce_config
 from eigenstream.errors import CheckpointError, EigenstreamError
 from eigenstream.io import store
@@ -59,11 +60,47 @@ class StageContext:
     name: str
     upstream: dict[str, dict[str, Any]] = field(default_factory=dict)
     show_progress: bool = True
+    resuming: bool = False
+    verify_all: bool = False
 
     def store(self, mode: str = "a"):
-        """This stage's zarr group."""
+        """This stage's zarr group (opened for appending when the stage is resuming)."""
         self.workdir.stage_dir(self.name).mkdir(parents=True, exist_ok=True)
+        if self.resuming and mode == "w":
+            mode = "a"
         return store.open_group(self.workdir.stage_store(self.name), mode=mode)
+
+    def array(self, group, name: str, *, shape: tuple[int, ...], chunk_rows: int, dtype):
+        """An output array: the existing one when resuming with the same layout, else new."""
+        if self.resuming and name in group:
+            arr = group[name]
+            if tuple(arr.shape) == tuple(shape) and arr.chunks[0] == min(chunk_rows, max(shape[0], 1)):
+                return arr
+        return store.create_array(group, name, shape=shape, chunk_rows=chunk_rows, dtype=dtype)
+
+    def finished_blocks(self, arrays) -> dict[int, dict[str, Any]]:
+        """Markers of blocks already written (verified; empty unless resuming)."""
+        if not self.resuming:
+            return {}
+        return verified_blocks(self.workdir, self.name, arrays, full=self.verify_all)
+
+    def mark_block(self, block: int, start: int, stop: int, crc: int, **info: Any) -> None:
+        """Record block ``block`` (rows start:stop, checksum crc) as written."""
+        self.workdir.mark_block(
+            self.name, block,
+            {"start": start, "stop": stop, "crc": crc, "written": time.time(), "pid": os.getpid(),
+             **info},
+        )
+
+    def set_blocks_total(self, total: int) -> None:
+        """Tell ``status`` how many blocks this stage has."""
+        state = self.workdir.stage_state(self.name) or {}
+        state["blocks_total"] = total
+        self.workdir.write_stage_state(self.name, state)
+
+    def check_stop(self, where: str) -> None:
+        """Stop here (after a finished block) if SIGINT/SIGTERM was received."""
+        STOP.check(f"{where} of stage {self.name}")
 
     def input_store(self, name: str):
         """An upstream stage's zarr group, read-only."""
@@ -121,17 +158,40 @@ def _sample_offsets(size: int) -> list[int]:
     return [0, size // 3, (2 * size) // 3, max(0, size - SAMPLE_BYTES)]
 
 
-def stage_fingerprint(stage: Stage, config: Config, upstream: dict[str, str], extra: Any) -> str:
-    """Hash of everything a stage's output depends on."""
-    payload = {
+def stage_depends(stage: Stage, config: Config, upstream: dict[str, str], extra: Any) -> dict:
+    """Everything a stage's output depends on, as plain JSON."""
+    return json.loads(_canonical({
         "stage": stage.name,
         "version": stage.version,
         "package": __version__,
         "settings": {key: config_value(config, key) for key in stage.config_keys},
         "inputs": {name: upstream[name] for name in stage.inputs},
         "extra": extra,
-    }
-    return hashlib.sha256(_canonical(payload).encode()).hexdigest()[:24]
+    }))
+
+
+def fingerprint(depends: dict) -> str:
+    """Short hash of a :func:`stage_depends` payload."""
+    return hashlib.sha256(_canonical(depends).encode()).hexdigest()[:24]
+
+
+def rerun_reason(old: dict | None, new: dict) -> str:
+    """One line saying why a stage's stored output no longer fits the settings."""
+    if not old:
+        return "its earlier output has no record of its settings"
+    changed = [
+        f"`[{k.split('.')[0]}] {k.split('.')[1]}` {old['settings'].get(k)!r} -> {v!r}"
+        for k, v in new["settings"].items()
+        if old.get("settings", {}).get(k) != v
+    ]
+    if old.get("extra") != new.get("extra"):
+        changed.append("the input file changed (size, time or content)")
+    inputs = [k for k, v in new["inputs"].items() if old.get("inputs", {}).get(k) != v]
+    if inputs:
+        changed.append("its input stage " + ", ".join(inputs) + " changed")
+    if old.get("package") != new.get("package") or old.get("version") != new.get("version"):
+        changed.append("eigenstream's version changed")
+    return "; ".join(changed) or "its settings changed"
 
 
 def peak_memory_bytes() -> dict[str, int]:
@@ -187,7 +247,8 @@ def _run_record(workdir: Workdir, config: Config) -> Iterator[dict[str, Any]]:
     try:
         yield record
     except BaseException as exc:
-        state = "interrupted" if isinstance(exc, KeyboardInterrupt) else "failed"
+        stopped = isinstance(exc, KeyboardInterrupt) or type(exc).__name__ == "Interrupted"
+        state = "interrupted" if stopped else "failed"
         workdir.update_run(state=state, error=str(exc) or type(exc).__name__, finished=time.time())
         raise
 
@@ -198,11 +259,14 @@ def run_pipeline(
     overrides: list[str] | tuple[str, ...] = (),
     show_progress: bool = True,
     fresh: bool = False,
+    verify_all: bool = False,
 ) -> Path:
     """Run every stage of ``config`` in its work directory and return the directory.
 
     Finished stages whose fingerprints still match are reused. ``fresh=True`` discards
-    everything an earlier run left in the work directory first (and says what).
+    everything an earlier run left in the work directory first (and says what);
+    ``verify_all=True`` reads back every finished block of an unfinished stage before
+    trusting it (by default only the newest one is read back).
     """
     from eigenstream.stages.read import preflight
 
@@ -210,12 +274,12 @@ def run_pipeline(
     preflight(config)
     workdir = Workdir(config.run.workdir)
     workdir.create()
-    with workdir.locked():
+    with workdir.locked(), stop_on_signals():
         if fresh:
             _discard(workdir)
         else:
             _refuse_other_input(workdir, config)
-        _execute(workdir, config, show_progress)
+        _execute(workdir, config, show_progress, verify_all)
     return workdir.path
 
 
@@ -242,7 +306,7 @@ def _refuse_other_input(workdir: Workdir, config: Config) -> None:
         )
 
 
-def _execute(workdir: Workdir, config: Config, show_progress: bool) -> None:
+def _execute(workdir: Workdir, config: Config, show_progress: bool, verify_all: bool) -> None:
     from eigenstream.cluster import make_client
 
     with _run_record(workdir, config) as record:
@@ -254,17 +318,20 @@ def _execute(workdir: Workdir, config: Config, show_progress: bool) -> None:
             workdir.write_run(record)
             for stage in stages():
                 extra = input_fingerprint(config.input.path) if not stage.inputs else None
-                fp = stage_fingerprint(stage, config, fingerprints, extra)
-                fingerprints[stage.name] = fp
+                depends = stage_depends(stage, config, fingerprints, extra)
+                fp = fingerprints[stage.name] = fingerprint(depends)
                 state = workdir.stage_state(stage.name)
                 if state and state.get("state") == "done" and state.get("fingerprint") == fp:
                     log.info("stage %s: reusing finished output", stage.name)
                     summaries[stage.name] = state.get("summary", {})
                     timings[stage.name] = state.get("seconds", 0.0)
                     continue
-                ctx = StageContext(config, workdir, client, stage.name, summaries, show_progress)
+                ctx = StageContext(config, workdir, client, stage.name, summaries, show_progress,
+                                   verify_all=verify_all)
                 with _storage_errors(stage.name, workdir):
-                    summaries[stage.name], timings[stage.name] = _run_stage(stage, ctx, fp)
+                    summaries[stage.name], timings[stage.name] = _run_stage(
+                        stage, ctx, depends, state
+                    )
         record.update(
             state="complete",
             finished=time.time(),
@@ -290,15 +357,36 @@ def _storage_errors(name: str, workdir: Workdir) -> Iterator[None]:
         ) from None
 
 
-def _run_stage(stage: Stage, ctx: StageContext, fp: str) -> tuple[dict[str, Any], float]:
-    ctx.workdir.clear_stage(stage.name)
-    ctx.workdir.write_stage_state(stage.name, {"state": "partial", "fingerprint": fp})
+def _run_stage(
+    stage: Stage, ctx: StageContext, depends: dict, previous: dict | None
+) -> tuple[dict[str, Any], float]:
+    fp = fingerprint(depends)
+    earlier = 0.0
+    if previous and previous.get("state") == "partial" and previous.get("fingerprint") == fp:
+        ctx.resuming = True
+        earlier = float(previous.get("seconds_before", 0.0))
+        log.info("stage %s: continuing the unfinished work", stage.name)
+    else:
+        if previous:
+            log.info("stage %s: recomputing: %s", stage.name,
+                     rerun_reason(previous.get("depends"), depends))
+        ctx.workdir.clear_stage(stage.name)
+        ctx.workdir.write_stage_state(
+            stage.name, {"state": "partial", "fingerprint": fp, "depends": depends}
+        )
     t0 = time.perf_counter()
-    summary = stage.run(ctx)
-    seconds = time.perf_counter() - t0
+    try:
+        summary = stage.run(ctx)
+    except BaseException:
+        state = ctx.workdir.stage_state(stage.name) or {}
+        state["seconds_before"] = earlier + time.perf_counter() - t0
+        ctx.workdir.write_stage_state(stage.name, state)
+        raise
+    seconds = earlier + time.perf_counter() - t0
     ctx.workdir.write_stage_state(
         stage.name,
-        {"state": "done", "fingerprint": fp, "summary": summary, "seconds": seconds},
+        {"state": "done", "fingerprint": fp, "depends": depends, "summary": summary,
+         "seconds": seconds, "resumed": ctx.resuming},
     )
     log.info("stage %s: done in %.1f s", stage.name, seconds)
     return summary, seconds
@@ -311,10 +399,12 @@ def status(workdir: str | Path) -> dict[str, Any]:
     if record is None:
         raise_missing(wd)
     names = [s.name for s in stages()]
-    states = {}
+    states, blocks = {}, {}
     for name in names:
         st = wd.stage_state(name)
         states[name] = st.get("state", "pending") if st else "pending"
+        if st and st.get("state") == "partial":
+            blocks[name] = {"done": len(wd.done_blocks(name)), "total": st.get("blocks_total")}
     complete = record.get("state") == "complete" and all(v == "done" for v in states.values())
     out: dict[str, Any] = {
         "workdir": str(wd.path.resolve()),
@@ -322,6 +412,8 @@ def status(workdir: str | Path) -> dict[str, Any]:
         "state": record.get("state"),
         "error": record.get("error"),
         "stages": states,
+        "blocks": blocks,
+        "up_to_date": _up_to_date(wd, record),
         "timings": record.get("timings", {}),
         "peak_memory": record.get("peak_memory"),
         "rows": None,
@@ -341,6 +433,29 @@ def status(workdir: str | Path) -> dict[str, Any]:
     aff_state = wd.stage_state("affinity")
     if aff_state and aff_state.get("state") == "done":
         out["graph"] = {k: aff_state["summary"].get(k) for k in ("nnz", "connected_components")}
+    return out
+
+
+def expected_fingerprints(config: Config) -> dict[str, str]:
+    """The fingerprint every stage would have if ``config`` ran now."""
+    out: dict[str, str] = {}
+    for stage in stages():
+        extra = input_fingerprint(config.input.path) if not stage.inputs else None
+        out[stage.name] = fingerprint(stage_depends(stage, config, out, extra))
+    return out
+
+
+def _up_to_date(wd: Workdir, record: dict[str, Any]) -> dict[str, bool] | None:
+    """Per stage: does its stored fingerprint match the run's config and input file now?"""
+    try:
+        config = Config.from_dict(record["config"])
+        expected = expected_fingerprints(config)
+    except (EigenstreamError, OSError, KeyError):
+        return None
+    out = {}
+    for name, fp in expected.items():
+        st = wd.stage_state(name)
+        out[name] = bool(st) and st.get("fingerprint") == fp
     return out
 
 

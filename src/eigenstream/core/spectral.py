@@ -429,6 +429,9 @@ def solve_embedding(
     max_matvecs: int = 200_000,
     seed: int = 0,
     check_multiplicity: bool = True,
+    solver: str = "lanczos",
+    state=None,
+    on_restart=None,
 ) -> Embedding:
     """Diffusion map from a kernel and its alpha-normalization (methods.md §3.1–3.3).
 
@@ -448,6 +451,12 @@ def solve_embedding(
         Search again for exactly repeated eigenvalues (see :func:`leading_eigenpairs`); about
         doubles the matvecs. Exact repeats need an exact symmetry (grids, cycles); sampled
         data only has near-repeats, which the first search resolves.
+    solver : {"lanczos", "arpack"}, default="lanczos"
+        Our thick-restart Lanczos (:mod:`eigenstream.core.lanczos`, restartable from a saved
+        state) or scipy's ARPACK ``eigsh``.
+    state, on_restart : optional
+        Lanczos only: resume from a :class:`~eigenstream.core.lanczos.LanczosState`, and a
+        callback receiving the state after every restart (for checkpoints).
 
     Returns
     -------
@@ -464,15 +473,20 @@ def solve_embedding(
     noise = np.random.default_rng(seed).standard_normal(n)
     v0 = sqrt_d / np.linalg.norm(sqrt_d) + _V0_NOISE * noise / np.sqrt(n)
     count = min(n, components + 1 + _EXTRA_PAIRS)
-    result = leading_eigenpairs(
-        op,
-        count,
-        v0=v0,
-        tol=tol,
-        max_matvecs=max_matvecs,
-        rng=seed,
-        check_multiplicity=check_multiplicity,
-    )
+    if solver == "lanczos":
+        from eigenstream.core.lanczos import thick_restart_lanczos
+
+        result = thick_restart_lanczos(
+            op.matvec, n, count, v0=v0, tol=tol, max_matvecs=max_matvecs, state=state,
+            on_restart=on_restart, rng=seed, check_multiplicity=check_multiplicity,
+        )
+    elif solver == "arpack":
+        result = leading_eigenpairs(
+            op, count, v0=v0, tol=tol, max_matvecs=max_matvecs, rng=seed,
+            check_multiplicity=check_multiplicity,
+        )
+    else:
+        raise ValueError(f"solver must be 'lanczos' or 'arpack'; got {solver!r}.")
     values, u = drop_trivial(result.values, result.vectors, sqrt_d)
     values, u = values[:components], fix_signs(u[:, :components])
     residuals = relative_residuals(op, values, u)

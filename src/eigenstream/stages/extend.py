@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.checkpoint import values_checksum
 from eigenstream.core.spectral import time_power
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
@@ -26,11 +27,18 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     n, c = psi.shape
     out = ctx.store(mode="w")
     chunk = config.run.chunk_rows
-    coords = store.create_array(out, "coordinates", shape=(n, c), chunk_rows=chunk, dtype=np.float64)
+    coords = ctx.array(out, "coordinates", shape=(n, c), chunk_rows=chunk, dtype=np.float64)
+    ranges = store.block_ranges(n, chunk)
+    ctx.set_blocks_total(len(ranges))
+    finished = ctx.finished_blocks([coords])
     with ctx.progress(n, "rows") as bar:
-        for s, e in store.block_ranges(n, chunk):
-            coords[s:e] = np.asarray(psi[s:e]) * weights
+        for number, (s, e) in enumerate(ranges):
+            if number not in finished:
+                block = np.asarray(psi[s:e]) * weights
+                coords[s:e] = block
+                ctx.mark_block(number, s, e, values_checksum([block]))
             bar.update(e - s)
+            ctx.check_stop(f"rows {s + 1}-{e}")
     return {"rows": n, "components": c, "diffusion_time": config.embedding.diffusion_time}
 
 

@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.checkpoint import values_checksum
 from eigenstream.core.moments import standardizer
 from eigenstream.core.neighbors import approximate_knn, exact_knn
 from eigenstream.io import store
@@ -48,10 +49,12 @@ def feature_transform(group, standardize: bool) -> tuple[np.ndarray, np.ndarray,
 def _exact_block(rows_path, out_path, start, stop, k, metric, shift, scale, unit):
     data = load_features(rows_path, shift, scale)
     idx, dist = exact_knn(data, k, metric=metric, query=data[start:stop], query_start=start)
+    idx = idx.astype(np.int64, copy=False)
+    dist = dist * (unit if metric == "euclidean" else 1.0)
     out = store.open_group(out_path, mode="r+")
     out["indices"][start:stop] = idx
-    out["distances"][start:stop] = dist * (unit if metric == "euclidean" else 1.0)
-    return start, stop
+    out["distances"][start:stop] = dist
+    return start, stop, values_checksum([idx, dist])
 
 
 def _approximate_all(rows_path, out_path, k, metric, seed, n_jobs, shift, scale, unit) -> int:
@@ -83,23 +86,31 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     if method == "approximate":
         block = config.run.chunk_rows
     out = ctx.store(mode="w")
-    store.create_array(out, "indices", shape=(n, k), chunk_rows=block, dtype=np.int64)
-    store.create_array(out, "distances", shape=(n, k), chunk_rows=block, dtype=np.float64)
+    arrays = [
+        ctx.array(out, "indices", shape=(n, k), chunk_rows=block, dtype=np.int64),
+        ctx.array(out, "distances", shape=(n, k), chunk_rows=block, dtype=np.float64),
+    ]
     out_path = str(ctx.workdir.stage_store(ctx.name))
     client = ctx.client
     if method == "exact":
         ranges = store.block_ranges(n, block)
-        futures = [
+        ctx.set_blocks_total(len(ranges))
+        finished = ctx.finished_blocks(arrays)
+        futures = {
             client.submit(
                 _exact_block, rows_path, out_path, s, e, k, config.graph.metric, shift, scale,
                 unit, pure=False,
-            )
-            for s, e in ranges
-        ]
+            ): number
+            for number, (s, e) in enumerate(ranges)
+            if number not in finished
+        }
         with ctx.progress(n, "rows") as bar:
-            for fut in _as_completed(futures):
-                s, e = fut.result()
+            bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
+            for fut in _as_completed(list(futures)):
+                s, e, crc = fut.result()
+                ctx.mark_block(futures[fut], s, e, crc)
                 bar.update(e - s)
+                ctx.check_stop(f"rows {s + 1}-{e}")
     else:
         n_jobs = config.cluster.threads_per_worker
         fut = client.submit(

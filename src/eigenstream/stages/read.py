@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.checkpoint import values_checksum
 from eigenstream.config import Config
 from eigenstream.core.moments import ColumnMoments
 from eigenstream.errors import ConfigError, InputError
@@ -56,35 +57,31 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     with open_source(config.input, extra_columns=_extra_columns(config)) as src:
         n, columns = src.n_rows, list(src.columns)
         group = ctx.store(mode="w")
-        rows = store.create_array(group, "rows", shape=(n, len(columns)), chunk_rows=chunk, dtype=dtype)
-        sinks: dict[str, Any] = {}
-        moments = ColumnMoments(len(columns))
-        dropped: list[Any] = []
-        kept = 0
+        rows = ctx.array(group, "rows", shape=(n, len(columns)), chunk_rows=chunk, dtype=dtype)
+        first, kept, dropped = _resume_point(ctx, rows)
+        total = len(store.block_ranges(n, chunk))
+        ctx.set_blocks_total(total)
         with ctx.progress(n, "rows") as bar:
-            for block in src.blocks(chunk):
-                values, ids, extra = block.values, block.ids, block.extra
-                bad = bad_value_mask(values)
-                if bad.any():
-                    if config.run.on_bad_rows == "refuse":
-                        raise InputError(describe_bad_value(block, columns, src.path, fmt=src.format))
-                    numbers = block.start + 1 + np.flatnonzero(bad)
-                    dropped.extend((ids[bad] if ids is not None else numbers).tolist())
-                    keep = ~bad
-                    values = values[keep]
-                    ids = ids[keep] if ids is not None else None
-                    extra = {k: v[keep] for k, v in extra.items()}
+            bar.update(min(first * chunk, n))
+            for number, block in enumerate(src.blocks(chunk, start=first * chunk), start=first):
+                values, ids, extra, lost = _clean(block, config, columns, src)
                 m = values.shape[0]
-                rows[kept : kept + m] = values.astype(dtype, copy=False)
-                _write_side(group, sinks, "ids", ids, kept, n, chunk)
+                stored = values.astype(dtype, copy=False)
+                rows[kept : kept + m] = stored
+                _write_side(ctx, group, "ids", ids, kept, n, chunk)
                 for col in extra.values():
-                    _write_side(group, sinks, "color", col, kept, n, chunk)
-                moments.update(values)
+                    _write_side(ctx, group, "color", col, kept, n, chunk)
+                ctx.mark_block(number, kept, kept + m, values_checksum([stored]), dropped=lost)
+                dropped.extend(lost)
                 kept += m
-                bar.update(block.values.shape[0])
+                bar.update(len(block.values))
+                ctx.check_stop(f"block {number + 1} of {total}")
         if kept < n:
             _shrink(group, kept)
         check_row_count(config, kept, f"{src.path} (after dropping {len(dropped)} bad rows)")
+        moments = ColumnMoments(len(columns))
+        for s, e in store.block_ranges(kept, chunk):
+            moments.update(np.asarray(rows[s:e]))
         store.write_small(group, "mean", moments.mean)
         store.write_small(group, "std", moments.std)
         if dropped:
@@ -103,14 +100,43 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         }
 
 
-def _write_side(group, sinks: dict, name: str, values, at: int, n: int, chunk: int) -> None:
+def _resume_point(ctx: StageContext, rows) -> tuple[int, int, list[Any]]:
+    """First block to read, rows already stored, and rows dropped so far (from markers).
+
+    Blocks are written in order by one writer, so the finished ones form a prefix.
+    """
+    markers = ctx.finished_blocks([rows])
+    first, kept, dropped = 0, 0, []
+    while first in markers:
+        kept = markers[first]["stop"]
+        dropped.extend(markers[first].get("dropped", []))
+        first += 1
+    return first, kept, dropped
+
+
+def _clean(block, config: Config, columns, src):
+    """Drop (or refuse) rows holding NaN/inf; return values, ids, extra and what was dropped."""
+    values, ids, extra = block.values, block.ids, block.extra
+    bad = bad_value_mask(values)
+    if not bad.any():
+        return values, ids, extra, []
+    if config.run.on_bad_rows == "refuse":
+        raise InputError(describe_bad_value(block, columns, src.path, fmt=src.format))
+    numbers = block.start + 1 + np.flatnonzero(bad)
+    lost = (ids[bad] if ids is not None else numbers).tolist()
+    keep = ~bad
+    ids = ids[keep] if ids is not None else None
+    return values[keep], ids, {k: v[keep] for k, v in extra.items()}, lost
+
+
+def _write_side(ctx: StageContext, group, name: str, values, at: int, n: int, chunk: int) -> None:
     if values is None:
         return
     values = np.asarray(values)
-    if name not in sinks:
+    if name not in group:
         dtype = str if values.dtype.kind in "OUST" else values.dtype
-        sinks[name] = store.create_array(group, name, shape=(n,), chunk_rows=chunk, dtype=dtype)
-    sinks[name][at : at + len(values)] = values
+        store.create_array(group, name, shape=(n,), chunk_rows=chunk, dtype=dtype)
+    group[name][at : at + len(values)] = values
 
 
 def _shrink(group, kept: int) -> None:
