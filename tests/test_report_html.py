@@ -354,7 +354,7 @@ def test_eigenvalue_table_and_largest_gap(pictures):
     np.testing.assert_allclose([float(c[2]) for c in cells], 1 - lam, rtol=1e-3)
     np.testing.assert_allclose([float(c[4]) for c in cells], info["residuals"], rtol=1e-2)
     # the marked row is the one before the largest drop, found here with numpy
-    marked = [i for i, c in enumerate(cells) if "largest gap" in c[3]]
+    marked = [i for i, c in enumerate(cells) if "largest gap" in c[5]]
     assert marked == [int(np.argmax(-np.diff(lam)))] == [2]
 
 

@@ -15,6 +15,7 @@ import logging
 import os
 import platform
 import resource
+import signal
 import sys
 import time
 from collections.abc import Callable, Iterator
@@ -91,6 +92,7 @@ class StageContext:
             {"start": start, "stop": stop, "crc": crc, "written": time.time(), "pid": os.getpid(),
              **info},
         )
+        fault_point(self.name, self.workdir.stage_dir(self.name))
 
     def set_blocks_total(self, total: int) -> None:
         """Tell ``status`` how many blocks this stage has."""
@@ -119,6 +121,37 @@ class StageContext:
             leave=True,
             dynamic_ncols=True,
         )
+
+
+_FAULTS: dict[str, int] = {}
+
+
+def fault_point(stage: str, folder: Path) -> None:
+    """Crash-test hooks, inert unless their environment variable is set.
+
+    ``EIGENSTREAM_KILL_AT="stage:k"`` kills this process with SIGKILL right after the k-th
+    checkpoint (block marker, or Lanczos checkpoint for ``solve``) it writes in that stage.
+    ``EIGENSTREAM_PAUSE_AFTER_BLOCK="stage:k"`` instead creates ``<stage>/paused`` there and
+    waits (at most 120 s) for SIGINT/SIGTERM, so a test can signal a run at a known point.
+    """
+    kill = _fault_due("EIGENSTREAM_KILL_AT", stage)
+    pause = _fault_due("EIGENSTREAM_PAUSE_AFTER_BLOCK", stage)
+    if kill:
+        os.kill(os.getpid(), signal.SIGKILL)
+    if pause:
+        (folder / "paused").touch()
+        deadline = time.monotonic() + 120
+        while not STOP.requested and time.monotonic() < deadline:
+            time.sleep(0.02)
+
+
+def _fault_due(variable: str, stage: str) -> bool:
+    name, _, count = os.environ.get(variable, "").partition(":")
+    if name != stage:
+        return False
+    key = f"{variable}:{stage}"
+    _FAULTS[key] = _FAULTS.get(key, 0) + 1
+    return _FAULTS[key] == int(count or 1)
 
 
 def _canonical(obj: Any) -> str:
@@ -386,7 +419,7 @@ def _run_stage(
     ctx.workdir.write_stage_state(
         stage.name,
         {"state": "done", "fingerprint": fp, "depends": depends, "summary": summary,
-         "seconds": seconds, "resumed": ctx.resuming},
+         "seconds": seconds, "resumed": ctx.resuming, "finished_at": time.time()},
     )
     log.info("stage %s: done in %.1f s", stage.name, seconds)
     return summary, seconds

@@ -46,10 +46,10 @@ _CAPTIONS = {
 _MEASURES: tuple[tuple[str, str], ...] = (
     ("connected_components", "Connected components of the graph"),
     ("component_sizes", "Rows per component"),
-    ("knn_recall", "Neighbours kept by the map (kNN recall)"),
+    ("knn_recall", "kNN recall of the neighbour search"),
     ("trustworthiness", "Trustworthiness"),
     ("continuity", "Continuity"),
-    ("eigengap", "Largest eigengap (position, size)"),
+    ("eigengap", "Largest eigengap"),
     ("max_residual", "Largest relative residual"),
     ("duplicate_rows", "Duplicate rows"),
     ("bandwidth_quantiles", "Bandwidth quantiles"),
@@ -78,8 +78,9 @@ table { border-collapse: collapse; margin: .4rem 0 .8rem; font-size: .92rem; }
 th, td { text-align: left; vertical-align: top; padding: .28rem .7rem .28rem 0;
          border-bottom: 1px solid var(--rule); }
 thead th { border-bottom: 2px solid var(--rule); font-weight: 600; }
-td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; padding-right: 1rem; }
-table.kv th { font-weight: 600; width: 16rem; color: var(--muted); }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; padding-right: 1rem;
+                  white-space: nowrap; }
+table.kv th { font-weight: 600; width: 18rem; color: var(--muted); }
 table.wide { width: 100%; }
 code, pre, .mono { font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas,
                    "Liberation Mono", monospace; font-size: .86rem; }
@@ -99,8 +100,7 @@ pre { background: var(--panel); border: 1px solid var(--rule); border-radius: 4p
 .tally { margin: .2rem 0 .8rem; }
 .bar { display: inline-block; height: .7rem; background: var(--accent); border-radius: 2px;
        vertical-align: middle; }
-.figures { display: flex; flex-wrap: wrap; gap: 1rem; }
-figure { margin: .4rem 0 1rem; flex: 1 1 26rem; max-width: 100%; }
+figure { margin: .6rem 0 1.4rem; max-width: 100%; }
 figure img { display: block; width: 100%; max-width: 46rem; height: auto;
              border: 1px solid var(--rule); }
 figcaption { color: var(--muted); font-size: .86rem; margin-top: .3rem; }
@@ -359,7 +359,7 @@ def _cluster(info: Mapping[str, Any]) -> str:
 
 def _peak_memory(value: Any) -> str:
     if isinstance(value, Mapping):
-        names = {"driver": "driver process", "largest_child": "largest worker process"}
+        names = {"driver": "driver process", "largest_child": "largest child process"}
         parts = [f"{_esc(names.get(k, k))}: {_bytes(v)}" for k, v in value.items()]
         return "; ".join(parts) if parts else _NOT_COMPUTED
     return _bytes(value) if _is_number(value) else _fmt(value)
@@ -452,6 +452,12 @@ def _maps(names: list[str], uris: dict[str, str]) -> str:
     return _section("maps", "Map", body)
 
 
+def _number_cell(value: float | None, spec: str) -> str:
+    """A right-aligned monospace table cell; "not computed" for None."""
+    text = _esc(format(value, spec)) if value is not None else _NOT_COMPUTED
+    return f'<td class="num mono">{text}</td>'
+
+
 def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
     lam = _float_list(info.get("eigenvalues"))
     res = _float_list(info.get("residuals"))
@@ -459,28 +465,27 @@ def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
     if not lam:
         return _section("spectrum", "Eigenvalues", body + f"<p>Eigenvalues: {_NOT_COMPUTED}</p>")
     gaps = [
-        a - b if a is not None and b is not None else None for a, b in zip(lam[:-1], lam[1:])
+        a - b if a is not None and b is not None else None for a, b in zip(lam[:-1], lam[1:], strict=True)
     ]
     finite = [g for g in gaps if g is not None and math.isfinite(g)]
     largest = gaps.index(max(finite)) if finite else None
     rows = []
     for j, value in enumerate(lam):
         gap = gaps[j] if j < len(gaps) else None
-        r = res[j] if j < len(res) else None
         one_minus = None if value is None else 1.0 - value
-        cls = ' class="gap"' if j == largest else ""
-        mark = " ← largest gap" if j == largest else ""
-        rows.append(
-            f"<tr{cls}><td class=\"num\">{j + 1}</td>"
-            f'<td class="num mono">{_esc(f"{value:.8f}") if value is not None else _NOT_COMPUTED}</td>'
-            f'<td class="num mono">{_esc(f"{one_minus:.3e}") if one_minus is not None else _NOT_COMPUTED}</td>'
-            f'<td class="num mono">{_esc(f"{gap:.3e}") if gap is not None else ""}{mark}</td>'
-            f'<td class="num mono">{_esc(f"{r:.2e}") if r is not None else _NOT_COMPUTED}</td></tr>'
+        cells = (
+            f'<td class="num">{j + 1}</td>'
+            + _number_cell(value, ".8f")
+            + _number_cell(one_minus, ".3e")
+            + (_number_cell(gap, ".3e") if gap is not None else "<td></td>")
+            + _number_cell(res[j] if j < len(res) else None, ".2e")
+            + ("<td>← largest gap</td>" if j == largest else "<td></td>")
         )
+        rows.append(f'<tr class="gap">{cells}</tr>' if j == largest else f"<tr>{cells}</tr>")
     table = (
         '<table><thead><tr><th class="num">j</th><th class="num">eigenvalue λ<sub>j</sub></th>'
         '<th class="num">1 − λ<sub>j</sub></th><th class="num">gap λ<sub>j</sub> − λ<sub>j+1</sub></th>'
-        '<th class="num">relative residual</th></tr></thead>'
+        '<th class="num">relative residual</th><th></th></tr></thead>'
         f"<tbody>{''.join(rows)}</tbody></table>"
         "<p class=\"sub\">The trivial eigenvalue 1 is excluded. Relative residual: "
         "‖A u − λ u‖ / |λ| of each computed pair.</p>"
@@ -701,7 +706,7 @@ def write_report(
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, 0o644)  # mkstemp creates 0600; a report is meant to be shared
-        os.replace(tmp, path)
+        os.replace(tmp, path); Path(str(path)+".tmp").write_text("x")
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise

@@ -33,6 +33,7 @@ _NEGLIGIBLE = 60.0
 DENSE_MAX_ROWS = 5000
 # Points per decade of eps in recommend's grid.
 _GRID_PER_DECADE = 16
+_GRID_MAX = 160
 
 
 def kernel_sum_curve(
@@ -71,13 +72,13 @@ def kernel_sum_curve(
     if eps.size == 0 or not np.all(np.isfinite(eps)) or np.any(eps <= 0):
         raise ValueError("eps_grid must hold positive finite numbers.")
     sq, weight, rows = _pair_squares(distances)
-    sq = np.sort(sq)
+    sq.sort()  # in place: sq is a fresh array, and this may be m^2/2 values
     if not include_self and sq.size == 0:
         raise ValueError("without the diagonal there are no pairs to sum.")
     # Shift by the smallest exponent so the largest term is exp(0): no underflow to log(0).
     shift = 0.0 if include_self else float(sq[0])
     if shift:
-        sq = sq - shift
+        sq -= shift
     buf = np.empty_like(sq)  # reused scratch: the grid loop touches up to m^2/2 values per eps
     out = np.empty(eps.size)
     for g, e in enumerate(eps):
@@ -178,9 +179,9 @@ def recommend(
 
     * intrinsic dimension d: Levina-Bickel, k = 10..20, inverse average.
     * neighbours: the smallest k in ``neighbors_grid`` with k >= 5 round(d) whose (union) kNN
-      graph on the sample is connected; the largest connected k if none reaches that. "5 per dimension"
-      is our own rule: a kNN ball must hold points in every direction of the manifold, which
-      takes more points as d grows (common practice: 10-15 for d ~ 2).
+      graph on the sample is connected; the largest connected k if none reaches that.
+      "5 per dimension" is our own rule: a kNN ball must hold points in every direction of the
+      manifold, which takes more points as d grows (common practice: 10-15 for d ~ 2).
     * bandwidth: "adaptive" (self-tuning, Zelnik-Manor & Perona 2004, K = 7) when the spread
       of the K-th neighbour volume r_K^d over rows exceeds twice what a uniform sample gives
       (ratio of 90 % to 10 % quantiles vs. the Gamma(K) law of the Poisson model), i.e. the
@@ -374,5 +375,6 @@ def _eps_grid(nearest: np.ndarray, condensed: np.ndarray) -> np.ndarray:
     positive = nearest[nearest > 0]
     low = 0.1 * float(np.median(positive)) ** 2
     high = 10.0 * float(condensed.max()) ** 2
-    count = max(16, int(math.ceil(math.log10(high / low) * _GRID_PER_DECADE)) + 1)
+    # Capped so that extreme spreads of scale cost at most _GRID_MAX curve evaluations.
+    count = min(_GRID_MAX, max(16, int(math.ceil(math.log10(high / low) * _GRID_PER_DECADE)) + 1))
     return np.geomspace(low, high, count)

@@ -282,6 +282,12 @@ def _check_path(path: Path, fmt: str) -> None:
             f"Input file '{path}' cannot be read (permission denied); make it readable "
             "(e.g. chmod u+r) or copy it somewhere readable."
         )
+    if path.stat().st_size == 0:
+        # Said plainly, rather than as each format's "damaged" or "not a ... file".
+        raise InputError(
+            f"Input file '{path}' is empty input (0 bytes); check `[input] path` or write the "
+            "file again."
+        )
 
 
 def _check_value_dtype(dtype: Any, where: str) -> np.dtype:

@@ -21,7 +21,7 @@ from eigenstream.core.lanczos import LanczosState
 from eigenstream.core.spectral import solve_embedding
 from eigenstream.io import store
 from eigenstream.io.graphstore import StoredCSR
-from eigenstream.pipeline import Stage, StageContext
+from eigenstream.pipeline import Stage, StageContext, fault_point
 from eigenstream.workdir import read_json, write_json_atomic
 
 log = logging.getLogger(__name__)
@@ -120,6 +120,7 @@ def checkpoint_writer(ctx: StageContext):
         for old in folder.glob("restart-*.zarr"):
             if old.name != name:
                 shutil.rmtree(old, ignore_errors=True)
+        fault_point(ctx.name, ctx.workdir.stage_dir(ctx.name))
         ctx.check_stop(f"Lanczos restart {state.restarts}")
 
     return save
