@@ -81,7 +81,9 @@ def test_status_reports_complete_run(circle):
     assert info["complete"] is True
     assert info["rows"] == 700 and info["components"] == 2
     assert len(info["eigenvalues"]) == 2 and len(info["residuals"]) == 2
-    assert set(info["stages"]) == {"read", "neighbors", "affinity", "solve", "extend", "report"}
+    assert set(info["stages"]) == {
+        "read", "neighbors", "affinity", "solve", "extend", "quality", "report"
+    }
     assert all(state == "done" for state in info["stages"].values())
     assert (result.workdir / "map.png").stat().st_size > 1000
     assert (result.workdir / "spectrum.png").stat().st_size > 1000
@@ -167,3 +169,21 @@ def test_real_worker_processes(tmp_path):
     result = eigenstream.run(cfg, progress=False)
     Y = SpectralMap(n_components=2, n_neighbors=12).fit_transform(X)
     assert np.allclose(np.asarray(result.coordinates[...]), Y, atol=1e-8)
+
+
+def test_quality_diagnostics_are_stored_and_reported(circle):
+    # Trustworthiness/continuity: Venna & Kaski 2001; scikit-learn's trustworthiness is the
+    # reference implementation (700 rows < the 1000-row sample, so both are exact here).
+    from sklearn.manifold import trustworthiness as sk_trust
+
+    _, X, _, result = circle
+    quality = status(result.workdir)["quality"]
+    for key in ("components", "knn_recall", "trustworthiness", "continuity"):
+        assert key in quality
+    Y = np.asarray(result.coordinates[...])
+    assert abs(quality["trustworthiness"] - sk_trust(X, Y, n_neighbors=10)) < 1e-9
+    assert abs(quality["continuity"] - sk_trust(Y, X, n_neighbors=10)) < 1e-9
+    assert quality["components"] == 1 and quality["knn_recall"] == 1.0
+    names = {c["name"]: c["status"] for c in quality["checks"]}
+    assert names["max_residual"] == "pass" and names["components"] == "pass"
+    assert (result.workdir / "quality" / "bandwidths.png").stat().st_size > 1000

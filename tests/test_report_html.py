@@ -207,10 +207,10 @@ def _info() -> dict:
             "duplicate_rows": 0,
             "bandwidth_quantiles": [1.34, 2.40, 18.4],
             "checks": [
-                {"name": "trustworthiness", "value": 0.93, "threshold": 0.9, "status": "pass",
-                 "meaning": "few false neighbours in the map"},
-                {"name": "knn_recall", "value": 0.41, "threshold": 0.5, "status": "warn",
-                 "meaning": EVIL},
+                {"name": "trustworthiness", "value": 0.93, "threshold": 0.85, "direction": "min",
+                 "status": "pass", "meaning": "few false neighbours in the map"},
+                {"name": "knn_recall", "value": 0.41, "threshold": 0.9, "direction": "min",
+                 "status": "warn", "meaning": EVIL},
                 {"name": EVIL_ATTR, "value": 1e-10, "threshold": 1e-6, "status": "pass",
                  "meaning": "eigenpairs converged"},
             ],
@@ -268,7 +268,8 @@ def test_page_loads_nothing_from_elsewhere(pictures, tune):
     assert refs
     for ref in refs:
         assert ref.startswith(("data:image/png;base64,", "#")), ref[:60]
-        assert "http://" not in ref and "https://" not in ref and not ref.strip("'\" ").startswith("//")
+        assert "http://" not in ref and "https://" not in ref
+        assert not ref.strip("'\" ").startswith("//")
     assert not re.search(r"url\(\s*['\"]?\s*(https?:)?//", text)
     for tag in ("script", "link", "iframe", "object", "embed", "base", "form"):
         assert page.tags(tag) == [], tag
@@ -366,10 +367,31 @@ def test_checks_carry_word_and_colour(pictures):
     assert badges.count("badge pass") == 1 + 2 and badges.count("badge warn") == 1 + 1
     diagnostics = _section_text(text, "diagnostics")
     assert diagnostics.count("PASS") == 2 and diagnostics.count("WARN") == 1
-    assert "0.93" in diagnostics and "0.9" in diagnostics  # value and threshold side by side
+    assert "0.93 ≥ 0.85" in diagnostics  # value and threshold side by side, with the direction
+    assert "1e-10 1e-06" in diagnostics  # no direction given: the bare threshold
     styles = " ".join(page.texts_of("style"))
     colours = {m for m in re.findall(r"--(?:ok|warn)-bg:\s*(#[0-9a-f]{6})", styles)}
     assert len(colours) == 2  # two distinct background colours besides the words
+
+
+def test_quality_stage_layout():
+    # diagnostics as the quality stage stores them: "components", a dict eigengap, quantiles
+    quality = {
+        "components": 2, "knn_recall": 1.0, "duplicate_fraction": 0.0, "bandwidth_spread": 13.8,
+        "eigengap": {"after_component": 3, "gap": 0.0128},
+        "bandwidth_quantiles": {"min": 1.3, "median": 2.4, "max": 18.4},
+        "bridges": [[0, 1500, 3.2]], "sample_rows": 1000, "neighbor_method": "exact",
+        "checks": [{"name": "components", "value": 2, "threshold": 1, "direction": "max",
+                    "status": "warn", "meaning": "the graph was disconnected and had to be bridged"}],
+    }
+    text = build_report({"quality": quality}, images={})
+    diagnostics = _section_text(text, "diagnostics")
+    assert "Connected components of the graph 2" in diagnostics
+    assert "0.0128 (after component 3)" in diagnostics
+    assert "min: 1.3; median: 2.4; max: 18.4" in diagnostics
+    assert "Largest / smallest bandwidth 13.8" in diagnostics
+    assert "2 ≤ 1" in diagnostics and diagnostics.count("WARN") == 1
+    assert " components 2" not in diagnostics.replace("the graph 2", "")  # not listed twice
 
 
 def test_config_block_is_valid_toml(pictures):

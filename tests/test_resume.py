@@ -130,17 +130,17 @@ def test_damaged_block_is_detected_and_recomputed(reference, tmp_path, which):
 def _finished_at(work):
     return {
         name: json.loads((work / name / "stage.json").read_text())["finished_at"]
-        for name in ("read", "neighbors", "affinity", "solve", "extend", "report")
+        for name in ("read", "neighbors", "affinity", "solve", "extend", "quality", "report")
     }
 
 
 @pytest.mark.parametrize(
     ("override", "rerun"),
     [
-        ("embedding.components=2", {"solve", "extend", "report"}),
-        ("embedding.diffusion_time=0", {"extend", "report"}),
-        ("kernel.alpha=0.5", {"affinity", "solve", "extend", "report"}),
-        ("graph.neighbors=12", {"neighbors", "affinity", "solve", "extend", "report"}),
+        ("embedding.components=2", {"solve", "extend", "quality", "report"}),
+        ("embedding.diffusion_time=0", {"extend", "quality", "report"}),
+        ("kernel.alpha=0.5", {"affinity", "solve", "extend", "quality", "report"}),
+        ("graph.neighbors=12", {"neighbors", "affinity", "solve", "extend", "quality", "report"}),
     ],
 )
 def test_changing_one_setting_reruns_exactly_the_dependent_stages(tmp_path, override, rerun):

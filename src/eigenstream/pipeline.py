@@ -258,9 +258,11 @@ def versions() -> dict[str, str]:
 
 def stages() -> tuple[Stage, ...]:
     """The stages in the order data flows through them."""
-    from eigenstream.stages import affinity, extend, neighbors, read, report, solve
+    from eigenstream.stages import affinity, extend, neighbors, quality, read, report, solve
 
-    return tuple(module.STAGE for module in (read, neighbors, affinity, solve, extend, report))
+    return tuple(
+        module.STAGE for module in (read, neighbors, affinity, solve, extend, quality, report)
+    )
 
 
 @contextmanager
@@ -463,6 +465,9 @@ def status(workdir: str | Path) -> dict[str, Any]:
         out["eigenvalues"] = summary.get("eigenvalues", [])
         out["residuals"] = summary.get("residuals", [])
         out["matvecs"] = summary.get("matvecs")
+    quality_state = wd.stage_state("quality")
+    if quality_state and quality_state.get("state") == "done":
+        out["quality"] = quality_state["summary"]
     aff_state = wd.stage_state("affinity")
     if aff_state and aff_state.get("state") == "done":
         out["graph"] = {k: aff_state["summary"].get(k) for k in ("nnz", "connected_components")}

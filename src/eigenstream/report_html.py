@@ -42,18 +42,31 @@ _CAPTIONS = {
     "tune-curve": "Log kernel sum against log bandwidth; the linear part bounds useful bandwidths.",
 }
 
-# Diagnostics shown in the measures table, in this order, with readable names.
-_MEASURES: tuple[tuple[str, str], ...] = (
-    ("connected_components", "Connected components of the graph"),
-    ("component_sizes", "Rows per component"),
-    ("knn_recall", "kNN recall of the neighbour search"),
-    ("trustworthiness", "Trustworthiness"),
-    ("continuity", "Continuity"),
-    ("eigengap", "Largest eigengap"),
-    ("max_residual", "Largest relative residual"),
-    ("duplicate_rows", "Duplicate rows"),
-    ("bandwidth_quantiles", "Bandwidth quantiles"),
+# Diagnostics shown in the measures table, in this order, with readable names. Each entry
+# lists the keys it may be stored under (the quality stage writes "components").
+_MEASURES: tuple[tuple[tuple[str, ...], str], ...] = (
+    (("connected_components", "components"), "Connected components of the graph"),
+    (("component_sizes",), "Rows per component"),
+    (("knn_recall",), "kNN recall of the neighbour search"),
+    (("trustworthiness",), "Trustworthiness"),
+    (("continuity",), "Continuity"),
+    (("eigengap",), "Largest eigengap"),
+    (("max_residual",), "Largest relative residual"),
+    (("duplicate_rows",), "Duplicate rows"),
+    (("bandwidth_quantiles",), "Bandwidth quantiles"),
 )
+# Names of further diagnostics, when present; any other key is shown under its own name.
+_EXTRA_LABELS = {
+    "duplicate_fraction": "Fraction of rows with an exact duplicate",
+    "bandwidth_spread": "Largest / smallest bandwidth",
+    "bridges": "Edges added to connect the graph",
+    "sample_rows": "Rows sampled for the measures",
+    "quality_neighbors": "Neighbours used by the measures",
+    "neighbor_method": "Neighbour search",
+}
+# Comparison a check's direction stands for: "min" means the value must be >= threshold.
+_DIRECTIONS = {"min": "≥", "max": "≤"}
+
 
 _STYLE = """
 :root { --ink:#1f2328; --muted:#59636e; --rule:#d0d7de; --panel:#f6f8fa; --accent:#2d5f9a;
@@ -461,11 +474,15 @@ def _number_cell(value: float | None, spec: str) -> str:
 def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
     lam = _float_list(info.get("eigenvalues"))
     res = _float_list(info.get("residuals"))
-    body = _figures(["spectrum"], uris) if "spectrum" in uris else f"<p>Spectrum plot: {_NOT_COMPUTED}</p>"
+    if "spectrum" in uris:
+        body = _figures(["spectrum"], uris)
+    else:
+        body = f"<p>Spectrum plot: {_NOT_COMPUTED}</p>"
     if not lam:
         return _section("spectrum", "Eigenvalues", body + f"<p>Eigenvalues: {_NOT_COMPUTED}</p>")
     gaps = [
-        a - b if a is not None and b is not None else None for a, b in zip(lam[:-1], lam[1:], strict=True)
+        a - b if a is not None and b is not None else None
+        for a, b in zip(lam[:-1], lam[1:], strict=True)
     ]
     finite = [g for g in gaps if g is not None and math.isfinite(g)]
     largest = gaps.index(max(finite)) if finite else None
@@ -484,13 +501,30 @@ def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
         rows.append(f'<tr class="gap">{cells}</tr>' if j == largest else f"<tr>{cells}</tr>")
     table = (
         '<table><thead><tr><th class="num">j</th><th class="num">eigenvalue λ<sub>j</sub></th>'
-        '<th class="num">1 − λ<sub>j</sub></th><th class="num">gap λ<sub>j</sub> − λ<sub>j+1</sub></th>'
+        '<th class="num">1 − λ<sub>j</sub></th>'
+        '<th class="num">gap λ<sub>j</sub> − λ<sub>j+1</sub></th>'
         '<th class="num">relative residual</th><th></th></tr></thead>'
         f"<tbody>{''.join(rows)}</tbody></table>"
         "<p class=\"sub\">The trivial eigenvalue 1 is excluded. Relative residual: "
         "‖A u − λ u‖ / |λ| of each computed pair.</p>"
     )
     return _section("spectrum", "Eigenvalues", body + table)
+
+
+def _threshold(check: Mapping[str, Any]) -> str:
+    """A check's threshold, with "≥" or "≤" in front when its direction is known."""
+    sign = _DIRECTIONS.get(str(check.get("direction", "")).lower())
+    value = _fmt(check.get("threshold"))
+    return f"{sign} {value}" if sign and check.get("threshold") is not None else value
+
+
+def _eigengap(value: Any) -> str:
+    """The largest eigengap, spelled out when stored as {"after_component", "gap"}."""
+    if isinstance(value, Mapping) and set(value) == {"after_component", "gap"}:
+        if value["gap"] is None:
+            return _NOT_COMPUTED
+        return f"{_fmt(value['gap'])} (after component {_fmt(value['after_component'])})"
+    return _fmt(value)
 
 
 def _diagnostics(info: Mapping[str, Any], uris: dict[str, str]) -> str:
@@ -502,7 +536,8 @@ def _diagnostics(info: Mapping[str, Any], uris: dict[str, str]) -> str:
             c = check if isinstance(check, Mapping) else {"name": check}
             rows.append(
                 f"<tr><td>{_fmt(c.get('name'))}</td><td class=\"num\">{_fmt(c.get('value'))}</td>"
-                f"<td class=\"num\">{_fmt(c.get('threshold'))}</td><td>{_badge(c.get('status'))}</td>"
+                f"<td class=\"num\">{_threshold(c)}</td>"
+                f"<td>{_badge(c.get('status'))}</td>"
                 f"<td>{_fmt(c.get('meaning'))}</td></tr>"
             )
         check_html = (
@@ -519,11 +554,13 @@ def _diagnostics(info: Mapping[str, Any], uris: dict[str, str]) -> str:
     if res:
         fallback["max_residual"] = max(res)
     rows = []
-    for key, label in _MEASURES:
-        value = quality.get(key, fallback.get(key))
-        rows.append((label, _fmt(value)))
-    known = {k for k, _ in _MEASURES} | {"checks"}
-    rows += [(str(k), _fmt(v)) for k, v in quality.items() if k not in known]
+    for keys, label in _MEASURES:
+        value = next((quality[k] for k in keys if k in quality), fallback.get(keys[0]))
+        rows.append((label, _eigengap(value) if keys[0] == "eigengap" else _fmt(value)))
+    known = {k for keys, _ in _MEASURES for k in keys} | {"checks"}
+    rows += [
+        (_EXTRA_LABELS.get(str(k), str(k)), _fmt(v)) for k, v in quality.items() if k not in known
+    ]
     body = "<h3>Checks against thresholds</h3>" + check_html
     body += "<h3>Measures</h3>" + _kv_table(rows)
     if "bandwidths" in uris:
@@ -586,7 +623,9 @@ def _provenance(info: Mapping[str, Any]) -> str:
         table = info.get(key)
         body += f"<h3>{title}</h3>"
         if isinstance(table, Mapping) and table:
-            body += _kv_table([(str(k), f'<span class="mono">{_fmt(v)}</span>') for k, v in table.items()])
+            body += _kv_table(
+                [(str(k), f'<span class="mono">{_fmt(v)}</span>') for k, v in table.items()]
+            )
         else:
             body += f"<p>{_NOT_COMPUTED}</p>"
     return _section("provenance", "Provenance", body)
@@ -626,16 +665,23 @@ def build_report(
         If ``info`` is not a dict or an image is missing or not a PNG file.
     """
     if not isinstance(info, Mapping):
-        raise InputError(f"report info must be a dict (as status() returns); got {type(info).__name__}")
+        raise InputError(
+            f"report info must be a dict (as status() returns); got {type(info).__name__}"
+        )
     if images is None:
         images = {}
     if not isinstance(images, Mapping):
-        raise InputError(f"report images must be a dict of name to PNG path; got {type(images).__name__}")
-    uris = {str(name): _data_uri(str(name), path) for name, path in images.items() if path is not None}
+        raise InputError(
+            f"report images must be a dict of name to PNG path; got {type(images).__name__}"
+        )
+    uris = {
+        str(name): _data_uri(str(name), path) for name, path in images.items() if path is not None
+    }
     if tune is not None and not isinstance(tune, Mapping):
         raise InputError(f"report tune results must be a dict; got {type(tune).__name__}")
 
-    map_names = [n for n in uris if n == "map"] + sorted(n for n in uris if n.startswith("map") and n != "map")
+    map_names = [n for n in uris if n == "map"]
+    map_names += sorted(n for n in uris if n.startswith("map") and n != "map")
     placed = set(map_names) | {"spectrum", "bandwidths"}
     if tune is not None:
         placed |= {n for n in uris if n.startswith("tune")}
@@ -697,7 +743,9 @@ def write_report(
     """
     path = Path(path)
     if not path.parent.is_dir():
-        raise ConfigError(f"report path {path}: directory {path.parent} does not exist; create it first")
+        raise ConfigError(
+            f"report path {path}: directory {path.parent} does not exist; create it first"
+        )
     text = build_report(info, images=images, tune=tune)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
@@ -706,7 +754,7 @@ def write_report(
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, 0o644)  # mkstemp creates 0600; a report is meant to be shared
-        os.replace(tmp, path); Path(str(path)+".tmp").write_text("x")
+        os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise

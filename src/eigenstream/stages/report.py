@@ -54,7 +54,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
 
 def _stage_states(wd) -> dict[str, dict[str, Any]]:
     out = {}
-    for name in ("read", "neighbors", "affinity", "solve", "extend"):
+    for name in ("read", "neighbors", "affinity", "solve", "extend", "quality"):
         state = wd.stage_state(name)
         if state:
             out[name] = state
@@ -65,6 +65,6 @@ STAGE = Stage(
     name="report",
     version=1,
     config_keys=("map.color_column",),
-    inputs=("extend", "read"),
+    inputs=("extend", "quality", "read"),
     run=_run,
 )

@@ -1,0 +1,156 @@
+"""Quality stage: diagnostics of every run, each with a documented warn threshold.
+
+Outputs ``quality/quality.json`` (also the stage summary, shown by ``status --json`` under
+``quality``) and ``quality/bandwidths.png``. Thresholds and their meaning: docs/quality.md.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any
+
+import numpy as np
+
+from eigenstream.core.neighbors import exact_knn, knn_recall
+from eigenstream.core.quality import continuity, eigengap, trustworthiness
+from eigenstream.io import store
+from eigenstream.pipeline import Stage, StageContext
+from eigenstream.stages.neighbors import feature_transform, load_features
+from eigenstream.workdir import write_json_atomic
+
+log = logging.getLogger(__name__)
+
+SAMPLE_ROWS = 1000
+QUALITY_NEIGHBORS = 10
+
+# name -> (threshold, direction, what a breach means); "min": value must be >= threshold.
+THRESHOLDS: dict[str, tuple[float, str, str]] = {
+    "max_residual": (1e-6, "max", "an eigenvector has not converged; tighten [solver] tol"),
+    "components": (1, "max", "the graph was disconnected and had to be bridged"),
+    "knn_recall": (0.9, "min", "the approximate neighbour graph misses many true neighbours"),
+    "trustworthiness": (0.85, "min", "map neighbours are often far apart in the data"),
+    "continuity": (0.85, "min", "data neighbours are often torn apart on the map"),
+    "duplicate_fraction": (0.05, "max", "many rows have an exact duplicate"),
+    "bandwidth_spread": (1e3, "max", "bandwidths span many orders of magnitude (outliers?)"),
+}
+
+
+def _sample_rows(n: int, seed: int) -> np.ndarray:
+    if n <= SAMPLE_ROWS:
+        return np.arange(n)
+    return np.sort(np.random.default_rng(seed).choice(n, size=SAMPLE_ROWS, replace=False))
+
+
+def recall_on_sample(data, stored_indices, method: str, rows: np.ndarray, metric: str) -> float:
+    """Recall of the stored kNN lists against exact neighbours on the sampled rows."""
+    if method == "exact":
+        return 1.0
+    k = stored_indices.shape[1]
+    idx, _ = exact_knn(data, k + 1, metric=metric, query=data[rows])
+    exact = np.array([row[row != r][:k] for row, r in zip(idx, rows, strict=True)])
+    return knn_recall(stored_indices[rows], exact)
+
+
+def checks(values: dict[str, float | None]) -> list[dict[str, Any]]:
+    """Pass/warn verdict of each diagnostic against its threshold."""
+    out = []
+    for name, (threshold, direction, meaning) in THRESHOLDS.items():
+        value = values.get(name)
+        if value is None:
+            continue
+        ok = value >= threshold if direction == "min" else value <= threshold
+        out.append({"name": name, "value": value, "threshold": threshold,
+                    "direction": direction, "status": "pass" if ok else "warn", "meaning": meaning})
+    return out
+
+
+def _run(ctx: StageContext) -> dict[str, Any]:
+    config = ctx.config
+    read_group = ctx.input_store("read")
+    shift, scale, _ = feature_transform(read_group, config.prep.standardize)
+    data = load_features(str(ctx.workdir.stage_store("read")), shift, scale).astype(np.float64)
+    n = data.shape[0]
+    knn = ctx.input_store("neighbors")
+    distances = np.asarray(knn["distances"][...])
+    sigma = np.asarray(ctx.input_store("affinity")["sigma"][...])
+    solved = ctx.input_store("solve")
+    eigenvalues = np.asarray(solved["eigenvalues"][...])
+    residuals = np.asarray(solved["residuals"][...])
+    coords = np.asarray(ctx.input_store("extend")["coordinates"][...])
+    rows = _sample_rows(n, config.run.seed)
+    sample = None if n <= SAMPLE_ROWS else SAMPLE_ROWS
+    k = min(QUALITY_NEIGHBORS, max(1, (n - 1) // 2 - 1))
+    rng = np.random.default_rng(config.run.seed)
+    with ctx.progress(4, "checks") as bar:
+        method = ctx.upstream.get("neighbors", {}).get("method", "exact")
+        recall = recall_on_sample(data, np.asarray(knn["indices"][...]), method, rows,
+                                  config.graph.metric)
+        bar.update(1)
+        trust = trustworthiness(data, coords, n_neighbors=k, sample=sample, rng=rng)
+        bar.update(1)
+        cont = continuity(data, coords, n_neighbors=k, sample=sample, rng=rng)
+        bar.update(1)
+        gap_index, gap = eigengap(eigenvalues) if eigenvalues.size > 1 else (0, None)
+        affinity = ctx.upstream.get("affinity", {})
+        values = {
+            "max_residual": float(np.max(residuals)),
+            "components": int(affinity.get("connected_components", 1)),
+            "knn_recall": float(recall),
+            "trustworthiness": float(trust),
+            "continuity": float(cont),
+            "duplicate_fraction": float(np.mean(distances[:, 0] == 0)),
+            "bandwidth_spread": float(sigma.max() / sigma.min()),
+        }
+        report = {
+            **values,
+            "component_sizes": affinity.get("component_sizes", []),
+            "bridges": affinity.get("bridges", []),
+            "duplicate_rows": int(np.sum(distances[:, 0] == 0)),
+            "eigengap": {"after_component": int(gap_index) + 1, "gap": gap},
+            "bandwidth_quantiles": dict(zip(
+                ("min", "p01", "p25", "median", "p75", "p99", "max"),
+                np.quantile(sigma, [0, 0.01, 0.25, 0.5, 0.75, 0.99, 1]).tolist(), strict=True,
+            )),
+            "sample_rows": int(rows.size),
+            "quality_neighbors": k,
+            "neighbor_method": method,
+            "checks": checks(values),
+        }
+        folder = ctx.workdir.stage_dir(ctx.name)
+        _bandwidth_plot(sigma, folder / "bandwidths.png")
+        write_json_atomic(folder / "quality.json", report)
+        bar.update(1)
+    for check in report["checks"]:
+        if check["status"] == "warn":
+            log.warning("quality: %s = %.4g (threshold %s %.4g): %s", check["name"],
+                        check["value"], ">=" if check["direction"] == "min" else "<=",
+                        check["threshold"], check["meaning"])
+    store.open_group(ctx.workdir.stage_store(ctx.name), mode="w")
+    return report
+
+
+def _bandwidth_plot(sigma: np.ndarray, path) -> None:
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(6, 3.2), dpi=110)
+    ax = fig.add_subplot()
+    positive = sigma[sigma > 0]
+    bins = np.geomspace(positive.min(), positive.max() * 1.0001, 40) if positive.size else 10
+    ax.hist(positive, bins=bins, color="#3b6ea8")
+    ax.set_xscale("log")
+    ax.set_xlabel("bandwidth sigma_i (input units)")
+    ax.set_ylabel("rows")
+    ax.set_title("Bandwidth distribution")
+    fig.tight_layout()
+    tmp = path.with_name(path.name + ".tmp.png")
+    fig.savefig(tmp)
+    tmp.replace(path)
+
+
+STAGE = Stage(
+    name="quality",
+    version=1,
+    config_keys=("graph.metric",),
+    inputs=("extend", "affinity", "neighbors"),
+    run=_run,
+)
