@@ -379,10 +379,10 @@ def test_quality_stage_layout():
     quality = {
         "components": 2, "knn_recall": 1.0, "duplicate_fraction": 0.0, "bandwidth_spread": 13.8,
         "eigengap": {"after_component": 3, "gap": 0.0128},
-        "bandwidth_quantiles": {"min": 1.3, "median": 2.4, "max": 18.4},
-        "bridges": [[0, 1500, 3.2]], "sample_rows": 1000, "neighbor_method": "exact",
+        "bandwidth_quantiles": {"max": 18.4, "median": 2.4, "min": 1.3},  # sorted by name
+        "bridges": [[0, 1500, 3.2]], "spare": [], "sample_rows": 1000, "neighbor_method": "exact",
         "checks": [{"name": "components", "value": 2, "threshold": 1, "direction": "max",
-                    "status": "warn", "meaning": "the graph was disconnected and had to be bridged"}],
+                    "status": "warn", "meaning": "the graph had to be bridged"}],
     }
     text = build_report({"quality": quality}, images={})
     diagnostics = _section_text(text, "diagnostics")
@@ -391,7 +391,10 @@ def test_quality_stage_layout():
     assert "min: 1.3; median: 2.4; max: 18.4" in diagnostics
     assert "Largest / smallest bandwidth 13.8" in diagnostics
     assert "2 ≤ 1" in diagnostics and diagnostics.count("WARN") == 1
-    assert " components 2" not in diagnostics.replace("the graph 2", "")  # not listed twice
+    measures = diagnostics.split("Measures", 1)[1]
+    assert measures.count("components") == 1  # "components" is not listed a second time
+    assert "Edges added to connect the graph [0, 1500, 3.2]" in measures
+    assert "spare none" in measures  # an empty list is "none", not "not computed"
 
 
 def test_config_block_is_valid_toml(pictures):
@@ -469,10 +472,14 @@ def test_bad_images_are_refused(tmp_path, pictures):
 
 @pytest.fixture(scope="session")
 def chromium() -> str:
-    """Path of a Chromium binary; installed with apt-get only when explicitly asked for."""
+    """Path of a Chromium binary; Debian's package is installed with apt-get in CI (CI=true,
+    as root) or when asked with EIGENSTREAM_INSTALL_BROWSER=1; elsewhere the test skips."""
     if os.path.exists(CHROMIUM):
         return CHROMIUM
-    wants = os.environ.get("EIGENSTREAM_INSTALL_BROWSER") == "1"
+    wants = (
+        os.environ.get("EIGENSTREAM_INSTALL_BROWSER") == "1"
+        or os.environ.get("CI", "").lower() == "true"
+    )
     if not (wants and os.geteuid() == 0 and shutil.which("apt-get")):
         pytest.skip(
             f"{CHROMIUM} not found; to render the report, install chromium or run as root "

@@ -1,4 +1,4 @@
-"""Command line: ``eigenstream run | status | export | demo``.
+"""Command line: ``eigenstream run | status | export | tune | report | demo``.
 
 Parses arguments, sets up logging, calls the pipeline and maps our exceptions to exit codes
 and one-line messages on stderr (tracebacks only with ``--debug``). No numerics here.
@@ -53,6 +53,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--format", choices=("npy", "parquet", "csv"), default=None,
                    help="file format (default: from the output suffix)")
 
+    p = sub.add_parser("tune", help="recommend bandwidth and neighbours from a sample")
+    p.add_argument("config", help="TOML configuration file")
+    p.add_argument("--sample", type=int, default=20_000, help="rows to sample (default 20000)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--set", dest="overrides", action="append", default=[],
+                   metavar="SECTION.KEY=VALUE", help="override one config value (repeatable)")
+
+    p = sub.add_parser("report", help="write the self-contained HTML report of a run")
+    p.add_argument("workdir")
+    p.add_argument("--output", default=None, help="file to write (default WORKDIR/report.html)")
+
     p = sub.add_parser("demo", help="generate the demo data set and map it")
     p.add_argument("--rows", type=int, default=None, help="rows to generate (default 30000)")
     p.add_argument("--workdir", default="demo-work", help="folder for data and results")
@@ -77,6 +88,7 @@ def _cmd_run(args) -> int:
 
 
 def _print_outputs(workdir: Path) -> None:
+    print(f"report:      {workdir / 'report.html'}")
     print(f"map:         {workdir / 'map.png'}")
     print(f"eigenvalues: {workdir / 'spectrum.png'}")
     print(f"manifest:    {workdir / 'manifest.json'}")
@@ -122,6 +134,51 @@ def _cmd_export(args) -> int:
     return EXIT_OK
 
 
+def _cmd_tune(args) -> int:
+    from eigenstream.config import load_config
+    from eigenstream.tune import run_tune
+
+    if args.sample < 40:
+        raise ConfigError(f"`--sample` must be at least 40; got {args.sample}.")
+    config = load_config(args.config, args.overrides)
+    result = run_tune(config, sample=args.sample)
+    _refresh_report(Path(config.run.workdir))
+    if args.json:
+        keys = ("intrinsic_dimension", "bandwidth_range", "bandwidth_best", "recommended",
+                "reasons", "dimension_per_k", "slope_dimension", "sample_rows", "input_rows")
+        print(json.dumps({k: result[k] for k in keys}, indent=2, default=str))
+        return EXIT_OK
+    print(f"sample: {result['sample_rows']} of {result['input_rows']} rows")
+    print(f"intrinsic dimension (Levina-Bickel): {result['intrinsic_dimension']:.2f}")
+    low, high = result["bandwidth_range"]
+    print(f"usable global bandwidth sigma: {low:.4g} .. {high:.4g} "
+          f"(best {result['bandwidth_best']:.4g}, on the sample)")
+    print("recommended settings:\n")
+    print(result["toml"])
+    return EXIT_OK
+
+
+def _refresh_report(workdir: Path) -> None:
+    """Rewrite the report of a finished run so it includes the newest tune results."""
+    from eigenstream.pipeline import status
+    from eigenstream.stages.report import write_run_report
+
+    try:
+        complete = status(workdir)["complete"]
+    except EigenstreamError:
+        return
+    if complete:
+        log.info("report updated: %s", write_run_report(workdir))
+
+
+def _cmd_report(args) -> int:
+    from eigenstream.stages.report import write_run_report
+
+    path = write_run_report(Path(args.workdir), Path(args.output) if args.output else None)
+    print(f"report: {path}")
+    return EXIT_OK
+
+
 def _cmd_demo(args) -> int:
     from eigenstream.demo import run_demo
 
@@ -130,7 +187,14 @@ def _cmd_demo(args) -> int:
     return EXIT_OK
 
 
-COMMANDS = {"run": _cmd_run, "status": _cmd_status, "export": _cmd_export, "demo": _cmd_demo}
+COMMANDS = {
+    "run": _cmd_run,
+    "status": _cmd_status,
+    "export": _cmd_export,
+    "tune": _cmd_tune,
+    "report": _cmd_report,
+    "demo": _cmd_demo,
+}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -36,7 +36,9 @@ from eigenstream.workdir import Workdir
 log = logging.getLogger(__name__)
 
 SAMPLE_BYTES = 1 << 20
-OUTPUT_FILES = ("run.json", "manifest.json", "map.png", "map-season.png", "spectrum.png")
+OUTPUT_FILES = (
+    "run.json", "manifest.json", "report.html", "map.png", "map-season.png", "spectrum.png"
+)
 _STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
 
 

@@ -142,21 +142,25 @@ def _is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
-def _num(value: float, digits: int = 4) -> str:
-    """A float with ``digits`` significant digits; integers with thousands separators."""
-    if isinstance(value, int):
-        return f"{value:,}"
-    if math.isnan(value):
-        return "NaN"
-    if math.isinf(value):
-        return "∞" if value > 0 else "−∞"
-    if value == int(value) and abs(value) < 1e15:
-        return f"{int(value):,}"
-    return f"{value:.{digits}g}"
+def _num(value: float, digits: int = 4, *, group: bool = True) -> str:
+    """A float with ``digits`` significant digits; whole numbers in full, grouped by thousands
+    unless ``group`` is False (inside comma-separated lists, where "1,500" would be ambiguous)."""
+    if isinstance(value, float):
+        if math.isnan(value):
+            return "NaN"
+        if math.isinf(value):
+            return "∞" if value > 0 else "−∞"
+        if value != int(value) or abs(value) >= 1e15:
+            return f"{value:.{digits}g}"
+        value = int(value)
+    return f"{value:,}" if group else str(value)
 
 
-def _fmt(value: Any, *, limit: int = 8) -> str:
-    """Escaped HTML for any JSON-like value; None (or an empty container) reads "not computed"."""
+def _fmt(value: Any, *, limit: int = 8, nested: bool = False) -> str:
+    """Escaped HTML for any JSON-like value; None reads "not computed", an empty container "none".
+
+    Inside a container (``nested``), numbers are not grouped and inner lists are bracketed.
+    """
     if value is None:
         return _NOT_COMPUTED
     if hasattr(value, "tolist") and not isinstance(value, str):  # numpy scalars and arrays
@@ -164,18 +168,21 @@ def _fmt(value: Any, *, limit: int = 8) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if _is_number(value):
-        return _esc(_num(value))
+        return _esc(_num(value, group=not nested))
     if isinstance(value, Mapping):
         if not value:
-            return _NOT_COMPUTED
-        return "; ".join(f"{_esc(k)}: {_fmt(v, limit=limit)}" for k, v in value.items())
+            return "{}" if nested else "none"
+        inner = "; ".join(
+            f"{_esc(k)}: {_fmt(v, limit=limit, nested=True)}" for k, v in value.items()
+        )
+        return f"{{{inner}}}" if nested else inner
     if isinstance(value, list | tuple):
         if not value:
-            return _NOT_COMPUTED
-        shown = ", ".join(_fmt(v, limit=limit) for v in value[:limit])
+            return "[]" if nested else "none"
+        shown = ", ".join(_fmt(v, limit=limit, nested=True) for v in value[:limit])
         if len(value) > limit:
             shown += f", … ({len(value):,} values)"
-        return shown
+        return f"[{shown}]" if nested else shown
     return _esc(value)
 
 
@@ -518,6 +525,13 @@ def _threshold(check: Mapping[str, Any]) -> str:
     return f"{sign} {value}" if sign and check.get("threshold") is not None else value
 
 
+def _by_value(value: Any) -> Any:
+    """A dict of numbers in increasing order of value (JSON files store keys sorted by name)."""
+    if isinstance(value, Mapping) and all(_is_number(v) for v in value.values()):
+        return dict(sorted(value.items(), key=lambda item: item[1]))
+    return value
+
+
 def _eigengap(value: Any) -> str:
     """The largest eigengap, spelled out when stored as {"after_component", "gap"}."""
     if isinstance(value, Mapping) and set(value) == {"after_component", "gap"}:
@@ -542,7 +556,7 @@ def _diagnostics(info: Mapping[str, Any], uris: dict[str, str]) -> str:
             )
         check_html = (
             '<table class="wide"><thead><tr><th>check</th><th class="num">value</th>'
-            '<th class="num">threshold</th><th>result</th><th>what it means</th></tr></thead>'
+            '<th class="num">threshold</th><th>result</th><th>what a warning means</th></tr></thead>'
             f"<tbody>{''.join(rows)}</tbody></table>"
         )
     else:
@@ -556,7 +570,12 @@ def _diagnostics(info: Mapping[str, Any], uris: dict[str, str]) -> str:
     rows = []
     for keys, label in _MEASURES:
         value = next((quality[k] for k in keys if k in quality), fallback.get(keys[0]))
-        rows.append((label, _eigengap(value) if keys[0] == "eigengap" else _fmt(value)))
+        if keys[0] == "eigengap":
+            rows.append((label, _eigengap(value)))
+        elif keys[0] == "bandwidth_quantiles":
+            rows.append((label, _fmt(_by_value(value))))
+        else:
+            rows.append((label, _fmt(value)))
     known = {k for keys, _ in _MEASURES for k in keys} | {"checks"}
     rows += [
         (_EXTRA_LABELS.get(str(k), str(k)), _fmt(v)) for k, v in quality.items() if k not in known
