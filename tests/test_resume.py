@@ -186,6 +186,28 @@ def test_a_second_run_on_a_locked_workdir_refuses_and_a_stale_lock_is_taken_over
     assert not (work / "lock").exists()
 
 
+def test_two_concurrent_runs_the_second_refuses_naming_the_first(tmp_path):
+    np.save(tmp_path / "rows.npy", make_rows())
+    cfg = write_config(tmp_path)
+    env = dict(os.environ, EIGENSTREAM_PAUSE_AFTER_BLOCK="read:2")
+    env.pop("EIGENSTREAM_KILL_AT", None)
+    first = subprocess.Popen([sys.executable, "-m", "eigenstream", "-q", "run", str(cfg)], env=env,
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    paused = tmp_path / "work" / "read" / "paused"
+    deadline = time.monotonic() + 120
+    while not paused.exists() and first.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    try:
+        second = run_cli("run", cfg)
+        assert second.returncode == 4
+        assert f"in use by process {first.pid}" in second.stderr
+    finally:
+        first.send_signal(signal.SIGINT)
+        first.communicate(timeout=120)
+    assert first.returncode == 130
+    assert run_cli("run", cfg).returncode == 0
+
+
 def test_sigterm_stops_after_the_current_block_and_says_how_to_resume(reference, tmp_path):
     _, expected = reference
     np.save(tmp_path / "rows.npy", make_rows())

@@ -206,6 +206,7 @@ class RunConfig:
     on_bad_rows: str = "refuse"
     dtype: str = "float32"
     checkpoint_seconds: float = 60.0
+    checkpoints: bool = True
 
     def __post_init__(self) -> None:
         if not isinstance(self.workdir, str) or not self.workdir:
@@ -214,6 +215,8 @@ class RunConfig:
         _int("run", "chunk_rows", self.chunk_rows, 1)
         _choice("run", "on_bad_rows", self.on_bad_rows, ("refuse", "drop"))
         _choice("run", "dtype", self.dtype, ("float32", "float64"))
+        if not isinstance(self.checkpoints, bool):
+            raise _fail("run", "checkpoints", "true or false", self.checkpoints)
         object.__setattr__(
             self, "checkpoint_seconds",
             _number("run", "checkpoint_seconds", self.checkpoint_seconds, 0.0),

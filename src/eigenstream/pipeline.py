@@ -89,6 +89,8 @@ class StageContext:
 
     def mark_block(self, block: int, start: int, stop: int, crc: int, **info: Any) -> None:
         """Record block ``block`` (rows start:stop, checksum crc) as written."""
+        if not self.config.run.checkpoints:
+            return
         self.workdir.mark_block(
             self.name, block,
             {"start": start, "stop": stop, "crc": crc, "written": time.time(), "pid": os.getpid(),

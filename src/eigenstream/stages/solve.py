@@ -59,7 +59,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             check_multiplicity=config.solver.check_multiplicity,
             solver=config.solver.method,
             state=state,
-            on_restart=checkpoint_writer(ctx) if lanczos else None,
+            on_restart=checkpoint_writer(ctx) if lanczos and config.run.checkpoints else None,
         )
     clear_checkpoint(ctx)
     out = ctx.store(mode="w")
