@@ -109,14 +109,20 @@ def _periodic_interp(x, xp, fp):
     return np.interp(x, xs, fs)
 
 
-def test_transition_rows_are_stochastic_and_far_rows_are_refused():
+def test_transition_rows_are_stochastic_far_rows_attach_and_empty_rows_are_refused():
     dist = np.array([[0.0, 1.0, 2.0], [0.5, 0.5, 0.5]])
     idx = np.array([[0, 1, 2], [2, 1, 0]])
     p = transition_rows(dist, idx, np.ones(2), np.ones(3), np.array([1.0, 2.0, 4.0]), alpha=1.0)
     np.testing.assert_allclose(p.sum(axis=1), 1.0)
     # alpha = 1, equal distances: p_j proportional to 1/q_j.
     np.testing.assert_allclose(p[1], np.array([1 / 4, 1 / 2, 1.0]) / 1.75)
-    with pytest.raises(InputError, match="New row 0"):
+    # Far from everything (kernel values underflow to 0): the row still attaches to its
+    # nearest training rows, in the limit ratio exp(-(d1^2 - d0^2)/sigma^2) (same formula).
+    far = transition_rows(np.array([[1e3, 1e3 + 1e-3]]), np.array([[0, 1]]), np.ones(1),
+                          np.ones(2), np.ones(2), alpha=0.5)
+    ratio = np.exp(-((1e3 + 1e-3) ** 2 - 1e6))
+    np.testing.assert_allclose(far[0], np.array([1.0, ratio]) / (1 + ratio), rtol=1e-9)
+    with pytest.raises(InputError, match="New row 1"):
         transition_rows(
-            np.array([[1e3]]), np.array([[0]]), np.ones(1), np.ones(1), np.ones(1), alpha=0.5
+            np.array([[np.inf]]), np.array([[0]]), np.ones(1), np.ones(1), np.ones(1), alpha=0.5
         )

@@ -6,10 +6,10 @@ import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_array, check_is_fitted
 
+from eigenstream.core.extension import extend_rows
 from eigenstream.core.graph import alpha_normalize, symmetric_affinity
 from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
 from eigenstream.core.neighbors import approximate_knn, exact_knn
-from eigenstream.core.nystrom import nystrom_extend
 from eigenstream.core.spectral import solve_embedding
 from eigenstream.errors import ConfigError, InputError
 
@@ -127,35 +127,10 @@ class SpectralMap(TransformerMixin, BaseEstimator):
             raise InputError(
                 f"X has {X.shape[1]} columns but the map was fitted on {self.n_features_in_}."
             )
-        dist, idx = kernel_rows(X, self.train_, self.radius_, self.n_neighbors, self.metric)
-        sigma_new = self._new_sigma(dist)
-        return nystrom_extend(
-            dist, idx, sigma_new, self.sigma_, self.q_, self.degrees_, self.psi_,
-            self.eigenvalues_, alpha=float(self.alpha), diffusion_time=float(self.diffusion_time),
+        return extend_rows(
+            X, self.train_, radius=self.radius_, sigma=self.sigma_, q=self.q_,
+            degrees=self.degrees_, psi=self.psi_, eigenvalues=self.eigenvalues_,
+            k=self.n_neighbors, bandwidth=self.bandwidth,
+            bandwidth_neighbor=self.bandwidth_neighbor, alpha=float(self.alpha),
+            diffusion_time=float(self.diffusion_time), metric=self.metric,
         )
-
-    def _new_sigma(self, dist: np.ndarray) -> np.ndarray:
-        if self.bandwidth != "adaptive":
-            return np.full(dist.shape[0], float(self.bandwidth))
-        positive = np.where(dist > 0, dist, np.inf)
-        ordered = np.sort(positive, axis=1)
-        sigma = ordered[:, self.bandwidth_neighbor - 1]
-        return np.where(np.isfinite(sigma), sigma, np.min(self.sigma_))
-
-
-def kernel_rows(X, train, radius, k, metric):
-    """Training rows that share a kernel edge with each new row, as (distances, indices).
-
-    A new row y is linked, like a training row, to its k nearest training rows (at positive
-    distance), to every training row x_j that would count y among its own k neighbours
-    (d(y, x_j) <= r_k(x_j), the reverse edges of the union rule) and to exact copies (distance 0,
-    the self loop). Entries not linked are given distance +inf (kernel weight 0).
-    """
-    n = train.shape[0]
-    candidates = min(n, 3 * k + 1)
-    idx, dist = exact_knn(train, candidates, metric=metric, query=X)
-    positive_rank = np.cumsum(dist > 0, axis=1)
-    forward = (dist > 0) & (positive_rank <= k)
-    reverse = dist <= radius[idx]
-    linked = forward | reverse | (dist == 0)
-    return np.where(linked, dist, np.inf), idx

@@ -26,7 +26,8 @@ def transition_rows(
     """Markov transition probabilities p_j from new rows to their listed training rows.
 
     k_j = exp(-d_j^2 / (sigma_y sigma_j)); q(y) = sum_j k_j;
-    k^(a)_j = k_j / (q(y)^a q_j^a); p_j = k^(a)_j / sum_j k^(a)_j.
+    k^(a)_j = k_j / (q(y)^a q_j^a); p_j = k^(a)_j / sum_j k^(a)_j (computed with the common
+    factor q(y)^a cancelled and the exponents shifted, so it never underflows to 0/0).
 
     Parameters
     ----------
@@ -44,17 +45,19 @@ def transition_rows(
     indices = np.asarray(indices, dtype=np.int64)
     d = np.asarray(distances, dtype=np.float64)
     sig = np.asarray(sigma_new, dtype=np.float64)[:, None] * np.asarray(sigma_train)[indices]
-    k = np.exp(-(d * d) / sig)
-    q_y = k.sum(axis=1)
-    empty = np.flatnonzero(~(q_y > 0))
+    exponent = (d * d) / sig
+    nearest = exponent.min(axis=1)
+    empty = np.flatnonzero(~np.isfinite(nearest))
     if empty.size:
         raise InputError(
-            f"New row {empty[0]} (and {empty.size - 1} more) has zero kernel weight to every "
-            "listed training row (it lies far from the training data); use more neighbours or "
-            "a larger bandwidth."
+            f"New row {empty[0] + 1} (and {empty.size - 1} more) has no listed training row "
+            "to attach to; check that its values are finite."
         )
-    a = float(alpha)
-    ka = k / (q_y[:, None] ** a * np.asarray(q_train, dtype=np.float64)[indices] ** a)
+    # q(y)^a cancels in p_j = k_j / (q(y)^a q_j^a) / sum(...), so the kernel row may be
+    # rescaled freely: shifting the exponent keeps rows far from every training row (whose
+    # kernel values underflow to 0) attached to their nearest training rows.
+    k = np.exp(-(exponent - nearest[:, None]))
+    ka = k / np.asarray(q_train, dtype=np.float64)[indices] ** float(alpha)
     return ka / ka.sum(axis=1)[:, None]
 
 
