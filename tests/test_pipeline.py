@@ -82,7 +82,8 @@ def test_status_reports_complete_run(circle):
     assert info["rows"] == 700 and info["components"] == 2
     assert len(info["eigenvalues"]) == 2 and len(info["residuals"]) == 2
     assert set(info["stages"]) == {
-        "read", "neighbors", "affinity", "solve", "extend", "quality", "report"
+        "read", "prep", "landmarks", "neighbors", "affinity", "solve", "extend", "quality",
+        "report",
     }
     assert all(state == "done" for state in info["stages"].values())
     assert (result.workdir / "map.png").stat().st_size > 1000

@@ -1,4 +1,4 @@
-"""Command line: ``eigenstream run | status | export | tune | report | demo``.
+"""Command line: ``eigenstream run | status | export | place | tune | report | demo``.
 
 Parses arguments, sets up logging, calls the pipeline and maps our exceptions to exit codes
 and one-line messages on stderr (tracebacks only with ``--debug``). No numerics here.
@@ -52,6 +52,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", required=True, help="file to write")
     p.add_argument("--format", choices=("npy", "parquet", "csv"), default=None,
                    help="file format (default: from the output suffix)")
+
+    p = sub.add_parser("place", help="put new rows on an existing map")
+    p.add_argument("workdir")
+    p.add_argument("--input", required=True, help="file or store with the new rows")
+    p.add_argument("--output", required=True, help="file to write the coordinates to")
+    p.add_argument("--format", choices=("npy", "parquet", "csv"), default=None,
+                   help="output format (default: from the output suffix)")
 
     p = sub.add_parser("tune", help="recommend bandwidth and neighbours from a sample")
     p.add_argument("config", help="TOML configuration file")
@@ -134,6 +141,14 @@ def _cmd_export(args) -> int:
     return EXIT_OK
 
 
+def _cmd_place(args) -> int:
+    from eigenstream.place import place_rows
+
+    path = place_rows(args.workdir, args.input, args.output, fmt=args.format)
+    print(f"placed rows written to {path}")
+    return EXIT_OK
+
+
 def _cmd_tune(args) -> int:
     from eigenstream.config import load_config
     from eigenstream.tune import run_tune
@@ -191,6 +206,7 @@ COMMANDS = {
     "run": _cmd_run,
     "status": _cmd_status,
     "export": _cmd_export,
+    "place": _cmd_place,
     "tune": _cmd_tune,
     "report": _cmd_report,
     "demo": _cmd_demo,

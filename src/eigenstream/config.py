@@ -119,10 +119,24 @@ class PrepConfig:
     """Column preparation before neighbours (section ``[prep]``)."""
 
     standardize: bool = False
+    pca_components: int = 0
 
     def __post_init__(self) -> None:
         if not isinstance(self.standardize, bool):
             raise _fail("prep", "standardize", "true or false", self.standardize)
+        _int("prep", "pca_components", self.pca_components, 0)
+
+
+@dataclass(frozen=True)
+class LandmarkConfig:
+    """Landmark (Nystrom) mode (section ``[landmarks]``); count 0 = full graph."""
+
+    count: int = 0
+    method: str = "uniform"
+
+    def __post_init__(self) -> None:
+        _int("landmarks", "count", self.count, 0)
+        _choice("landmarks", "method", self.method, ("uniform", "kmeans++"))
 
 
 @dataclass(frozen=True)
@@ -207,6 +221,7 @@ class RunConfig:
     dtype: str = "float32"
     checkpoint_seconds: float = 60.0
     checkpoints: bool = True
+    memory_limit: str = "auto"
 
     def __post_init__(self) -> None:
         if not isinstance(self.workdir, str) or not self.workdir:
@@ -215,6 +230,7 @@ class RunConfig:
         _int("run", "chunk_rows", self.chunk_rows, 1)
         _choice("run", "on_bad_rows", self.on_bad_rows, ("refuse", "drop"))
         _choice("run", "dtype", self.dtype, ("float32", "float64"))
+        memory_bytes(self.memory_limit)
         if not isinstance(self.checkpoints, bool):
             raise _fail("run", "checkpoints", "true or false", self.checkpoints)
         object.__setattr__(
@@ -259,9 +275,25 @@ class MapConfig:
         _opt_str("map", "color_column", self.color_column)
 
 
+def memory_bytes(text: Any) -> int | None:
+    """``[run] memory_limit`` in bytes ("2GiB", "500MB", a number of bytes); None for "auto"."""
+    if text == "auto":
+        return None
+    from dask.utils import parse_bytes
+
+    try:
+        value = parse_bytes(text) if isinstance(text, str) else int(text)
+    except (ValueError, TypeError):
+        value = -1
+    if isinstance(text, bool) or value <= 0:
+        raise _fail("run", "memory_limit", 'a size such as "2GiB" or "auto"', text)
+    return int(value)
+
+
 SECTIONS: dict[str, type] = {
     "input": InputConfig,
     "prep": PrepConfig,
+    "landmarks": LandmarkConfig,
     "graph": GraphConfig,
     "kernel": KernelConfig,
     "embedding": EmbeddingConfig,
@@ -283,6 +315,7 @@ class Config:
 
     input: InputConfig
     prep: PrepConfig = field(default_factory=PrepConfig)
+    landmarks: LandmarkConfig = field(default_factory=LandmarkConfig)
     graph: GraphConfig = field(default_factory=GraphConfig)
     kernel: KernelConfig = field(default_factory=KernelConfig)
     embedding: EmbeddingConfig = field(default_factory=EmbeddingConfig)
@@ -297,6 +330,12 @@ class Config:
             raise ConfigError(
                 f"`[kernel] bandwidth_neighbor` ({self.kernel.bandwidth_neighbor}) must not exceed "
                 f"`[graph] neighbors` ({k}); lower it or raise the number of neighbours."
+            )
+        m = self.landmarks.count
+        if m and m < k + 1:
+            raise ConfigError(
+                f"`[landmarks] count` = {m} must be at least `[graph] neighbors` + 1 = {k + 1} "
+                "(or 0 for the full graph)."
             )
 
     def to_dict(self) -> dict[str, dict[str, Any]]:

@@ -262,11 +262,20 @@ def versions() -> dict[str, str]:
 
 def stages() -> tuple[Stage, ...]:
     """The stages in the order data flows through them."""
-    from eigenstream.stages import affinity, extend, neighbors, quality, read, report, solve
-
-    return tuple(
-        module.STAGE for module in (read, neighbors, affinity, solve, extend, quality, report)
+    from eigenstream.stages import (
+        affinity,
+        extend,
+        landmarks,
+        neighbors,
+        prep,
+        quality,
+        read,
+        report,
+        solve,
     )
+
+    order = (read, prep, landmarks, neighbors, affinity, solve, extend, quality, report)
+    return tuple(module.STAGE for module in order)
 
 
 @contextmanager

@@ -20,7 +20,7 @@ from eigenstream.errors import InputError
 from eigenstream.io import store
 from eigenstream.io.graphstore import write_csr
 from eigenstream.pipeline import Stage, StageContext
-from eigenstream.stages.neighbors import feature_transform, load_features
+from eigenstream.stages.features import graph_rows_spec
 
 log = logging.getLogger(__name__)
 
@@ -91,9 +91,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
 
 def _bridge(ctx: StageContext, K, labels):
     """Link every smaller component to the largest (policy: docs/method.md, section 7)."""
-    read_group = ctx.input_store("read")
-    shift, scale, _ = feature_transform(read_group, ctx.config.prep.standardize)
-    data = load_features(str(ctx.workdir.stage_store("read")), shift, scale)
+    data = graph_rows_spec(ctx.workdir, ctx.config).load()
     pairs = closest_pairs(data, labels, metric=ctx.config.graph.metric,
                           rng=np.random.default_rng(ctx.config.run.seed))
     K, weight = bridge(K, pairs)

@@ -3,8 +3,8 @@
 Outputs ``indices`` (n, k) int64 and ``distances`` (n, k) float64, each row sorted by distance,
 the row itself excluded. Small tables (``[graph] exact_max_rows``) use exact search split into
 row blocks, one dask task per block (each task writes whole chunks it owns); larger ones use
-pynndescent's approximate search in one worker task. The features are the stored rows,
-standardised first when ``[prep] standardize`` is on.
+pynndescent's approximate search in one worker task. The rows are the graph rows of
+:mod:`eigenstream.stages.features` (all rows or the landmarks).
 """
 
 from __future__ import annotations
@@ -14,55 +14,32 @@ from typing import Any
 import numpy as np
 
 from eigenstream.checkpoint import values_checksum
-from eigenstream.core.moments import standardizer
 from eigenstream.core.neighbors import approximate_knn, exact_knn
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
+from eigenstream.stages.features import FeatureSpec, graph_rows_spec
 
 # Exact search holds a (block, n) distance matrix per task; this caps it near 128 MiB.
 _EXACT_BLOCK_ELEMENTS = 1 << 24
 
 
-def load_features(rows_path: str, mean: np.ndarray, scale: np.ndarray) -> np.ndarray:
-    """The feature matrix as the neighbour search sees it: (rows - mean) / scale."""
-    rows = np.asarray(store.open_group(rows_path, mode="r")["rows"][...])
-    return ((rows - mean) / scale).astype(rows.dtype, copy=False)
-
-
-def feature_transform(group, standardize: bool) -> tuple[np.ndarray, np.ndarray, float]:
-    """Shift, per-column scale and distance unit of the features.
-
-    Without standardisation the rows are only divided by a power of two near their
-    root-mean-square value: exact in floating point, and it keeps squared distances of
-    tables holding 1e30 or 1e-30 inside float32 range. Distances are multiplied back by
-    that unit, so they are in the input's units.
-    """
-    mean, std = np.asarray(group["mean"][...]), np.asarray(group["std"][...])
-    if standardize:
-        shift, scale = standardizer(mean, std)
-        return shift, scale, 1.0
-    rms = float(np.sqrt(np.mean(std**2 + mean**2)))
-    unit = 2.0 ** np.round(np.log2(rms)) if rms > 0 and np.isfinite(rms) else 1.0
-    return np.zeros_like(mean), np.full_like(mean, unit), unit
-
-
-def _exact_block(rows_path, out_path, start, stop, k, metric, shift, scale, unit):
-    data = load_features(rows_path, shift, scale)
-    idx, dist = exact_knn(data, k, metric=metric, query=data[start:stop], query_start=start)
+def _exact_block(spec: FeatureSpec, out_path, start, stop, k):
+    data = spec.load()
+    idx, dist = exact_knn(data, k, metric=spec.metric, query=data[start:stop], query_start=start)
     idx = idx.astype(np.int64, copy=False)
-    dist = dist * (unit if metric == "euclidean" else 1.0)
+    dist = spec.distances_to_input_units(dist)
     out = store.open_group(out_path, mode="r+")
     out["indices"][start:stop] = idx
     out["distances"][start:stop] = dist
     return start, stop, values_checksum([idx, dist])
 
 
-def _approximate_all(rows_path, out_path, k, metric, seed, n_jobs, shift, scale, unit) -> int:
-    data = load_features(rows_path, shift, scale)
-    idx, dist = approximate_knn(data, k, metric=metric, seed=seed, n_jobs=n_jobs)
+def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> int:
+    data = spec.load()
+    idx, dist = approximate_knn(data, k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
     out = store.open_group(out_path, mode="r+")
     out["indices"][...] = idx
-    out["distances"][...] = dist * (unit if metric == "euclidean" else 1.0)
+    out["distances"][...] = spec.distances_to_input_units(dist)
     return data.shape[0]
 
 
@@ -76,11 +53,9 @@ def choose_method(config, n_rows: int) -> str:
 
 def _run(ctx: StageContext) -> dict[str, Any]:
     config = ctx.config
-    rows_path = str(ctx.workdir.stage_store("read"))
-    read_group = ctx.input_store("read")
-    n = read_group["rows"].shape[0]
+    spec = graph_rows_spec(ctx.workdir, config)
+    n = spec.n_rows
     k = config.graph.neighbors
-    shift, scale, unit = feature_transform(read_group, config.prep.standardize)
     method = choose_method(config, n)
     block = max(1, min(config.run.chunk_rows, _EXACT_BLOCK_ELEMENTS // max(n, 1)))
     if method == "approximate":
@@ -97,10 +72,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         ctx.set_blocks_total(len(ranges))
         finished = ctx.finished_blocks(arrays)
         futures = {
-            client.submit(
-                _exact_block, rows_path, out_path, s, e, k, config.graph.metric, shift, scale,
-                unit, pure=False,
-            ): number
+            client.submit(_exact_block, spec, out_path, s, e, k, pure=False): number
             for number, (s, e) in enumerate(ranges)
             if number not in finished
         }
@@ -113,13 +85,11 @@ def _run(ctx: StageContext) -> dict[str, Any]:
                 ctx.check_stop(f"rows {s + 1}-{e}")
     else:
         n_jobs = config.cluster.threads_per_worker
-        fut = client.submit(
-            _approximate_all, rows_path, out_path, k, config.graph.metric, config.run.seed,
-            n_jobs, shift, scale, unit, pure=False,
-        )
+        fut = client.submit(_approximate_all, spec, out_path, k, config.run.seed, n_jobs,
+                            pure=False)
         with ctx.progress(n, "rows") as bar:
             bar.update(fut.result())
-    return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": unit}
+    return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": spec.unit}
 
 
 def _as_completed(futures):
@@ -136,10 +106,9 @@ STAGE = Stage(
         "graph.metric",
         "graph.method",
         "graph.exact_max_rows",
-        "prep.standardize",
         "run.seed",
         "cluster.threads_per_worker",
     ),
-    inputs=("read",),
+    inputs=("landmarks",),
     run=_run,
 )

@@ -15,12 +15,13 @@ from eigenstream.core.neighbors import exact_knn, knn_recall
 from eigenstream.core.quality import continuity, eigengap, trustworthiness
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
-from eigenstream.stages.neighbors import feature_transform, load_features
+from eigenstream.stages.features import all_rows_spec, graph_rows_spec
 from eigenstream.workdir import write_json_atomic
 
 log = logging.getLogger(__name__)
 
 SAMPLE_ROWS = 1000
+MAP_ROWS = 20_000
 QUALITY_NEIGHBORS = 10
 
 # name -> (threshold, direction, what a breach means); "min": value must be >= threshold.
@@ -33,6 +34,13 @@ THRESHOLDS: dict[str, tuple[float, str, str]] = {
     "duplicate_fraction": (0.05, "max", "many rows have an exact duplicate"),
     "bandwidth_spread": (1e3, "max", "bandwidths span many orders of magnitude (outliers?)"),
 }
+
+
+def _map_subset(n: int, seed: int) -> np.ndarray | None:
+    """Rows used for trustworthiness/continuity: all up to MAP_ROWS, else a seeded subset."""
+    if n <= MAP_ROWS:
+        return None
+    return np.sort(np.random.default_rng(seed + 1).choice(n, size=MAP_ROWS, replace=False))
 
 
 def _sample_rows(n: int, seed: int) -> np.ndarray:
@@ -66,9 +74,11 @@ def checks(values: dict[str, float | None]) -> list[dict[str, Any]]:
 
 def _run(ctx: StageContext) -> dict[str, Any]:
     config = ctx.config
-    read_group = ctx.input_store("read")
-    shift, scale, _ = feature_transform(read_group, config.prep.standardize)
-    data = load_features(str(ctx.workdir.stage_store("read")), shift, scale).astype(np.float64)
+    graph = graph_rows_spec(ctx.workdir, config).load().astype(np.float64)
+    everything = all_rows_spec(ctx.workdir, config)
+    n_all = everything.n_rows
+    subset = _map_subset(n_all, config.run.seed)
+    data = (everything.load() if subset is None else everything.load_rows(subset)).astype(np.float64)
     n = data.shape[0]
     knn = ctx.input_store("neighbors")
     distances = np.asarray(knn["distances"][...])
@@ -76,14 +86,18 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     solved = ctx.input_store("solve")
     eigenvalues = np.asarray(solved["eigenvalues"][...])
     residuals = np.asarray(solved["residuals"][...])
-    coords = np.asarray(ctx.input_store("extend")["coordinates"][...])
-    rows = _sample_rows(n, config.run.seed)
+    coord_array = ctx.input_store("extend")["coordinates"]
+    coords = np.asarray(
+        coord_array[...] if subset is None
+        else coord_array.get_orthogonal_selection((subset, slice(None)))
+    )
+    rows = _sample_rows(graph.shape[0], config.run.seed)
     sample = None if n <= SAMPLE_ROWS else SAMPLE_ROWS
     k = min(QUALITY_NEIGHBORS, max(1, (n - 1) // 2 - 1))
     rng = np.random.default_rng(config.run.seed)
     with ctx.progress(4, "checks") as bar:
         method = ctx.upstream.get("neighbors", {}).get("method", "exact")
-        recall = recall_on_sample(data, np.asarray(knn["indices"][...]), method, rows,
+        recall = recall_on_sample(graph, np.asarray(knn["indices"][...]), method, rows,
                                   config.graph.metric)
         bar.update(1)
         trust = trustworthiness(data, coords, n_neighbors=k, sample=sample, rng=rng)
@@ -112,6 +126,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
                 np.quantile(sigma, [0, 0.01, 0.25, 0.5, 0.75, 0.99, 1]).tolist(), strict=True,
             )),
             "sample_rows": int(rows.size),
+            "map_rows_used": int(n),
             "quality_neighbors": k,
             "neighbor_method": method,
             "checks": checks(values),
@@ -152,5 +167,6 @@ STAGE = Stage(
     version=1,
     config_keys=("graph.metric",),
     inputs=("extend", "affinity", "neighbors"),
+    # trustworthiness on more than MAP_ROWS rows is measured within a seeded subset of them
     run=_run,
 )

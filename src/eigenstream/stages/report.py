@@ -98,7 +98,9 @@ def write_run_report(workdir: Path, output: Path | None = None, *, final: bool =
 
 def _stage_states(wd) -> dict[str, dict[str, Any]]:
     out = {}
-    for name in ("read", "neighbors", "affinity", "solve", "extend", "quality"):
+    from eigenstream.pipeline import stages
+
+    for name in (stage.name for stage in stages() if stage.name != "report"):
         state = wd.stage_state(name)
         if state:
             out[name] = state
