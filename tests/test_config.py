@@ -78,3 +78,18 @@ def test_overrides_parse_toml_literals_and_refuse_unknown_keys():
 def test_missing_config_file(tmp_path):
     with pytest.raises(ConfigError, match="not found"):
         load_config(tmp_path / "nope.toml")
+
+
+def test_memory_limit_refuses_a_run_that_cannot_fit_with_the_figure(tmp_path):
+    # 2M rows x 50 columns in full-graph mode needs several GiB by our estimate; the refusal
+    # names the figure, the limit and what to change (issue: "refuses up front, with a figure").
+    from eigenstream import budget
+
+    cfg = load_config(write(tmp_path, '[input]\npath = "a.npy"\n[run]\nmemory_limit = "1GiB"\n'))
+    with pytest.raises(ConfigError, match=r"needs about .* GiB .*memory_limit.* 1.00 GiB.*landmarks"):
+        budget.check(cfg, 2_000_000, 50)
+    small = load_config(write(tmp_path, '[input]\npath = "a.npy"\n[run]\nmemory_limit = "1GiB"\n'
+                                        "[landmarks]\ncount = 20000\n"))
+    budget.check(small, 2_000_000, 50)  # landmark mode fits: bounded by m, not n
+    with pytest.raises(ConfigError, match="memory_limit"):
+        load_config(write(tmp_path, '[input]\npath = "a.npy"\n[run]\nmemory_limit = "lots"\n'))

@@ -14,7 +14,7 @@ from contextlib import contextmanager
 import dask
 from distributed import Client, LocalCluster
 
-from eigenstream.config import ClusterConfig
+from eigenstream.config import ClusterConfig, memory_bytes
 from eigenstream.errors import ConfigError
 
 log = logging.getLogger(__name__)
@@ -29,11 +29,12 @@ def local_worker_count(cfg: ClusterConfig) -> int:
 
 
 @contextmanager
-def make_client(cfg: ClusterConfig) -> Iterator[Client]:
+def make_client(cfg: ClusterConfig, memory_limit: str | None = None) -> Iterator[Client]:
     """Yield a connected Client for the run and close what was started afterwards.
 
     Numba and BLAS threads in each worker are capped to the worker's threads, because dask
-    caps BLAS but not numba and oversubscribed cores slow the neighbour search.
+    caps BLAS but not numba and oversubscribed cores slow the neighbour search. With a
+    ``memory_limit`` ("2GiB") each local worker gets an equal share of it.
     """
     threads = str(cfg.threads_per_worker)
     environ = {
@@ -58,8 +59,12 @@ def make_client(cfg: ClusterConfig) -> Iterator[Client]:
             return
         # Worker processes talk over loopback only; threads use in-process transport.
         network = {"host": "127.0.0.1"} if cfg.processes else {}
+        workers = local_worker_count(cfg)
+        limit = memory_bytes(memory_limit) if memory_limit else None
+        if limit is not None:
+            network["memory_limit"] = max(limit // workers, 256 << 20)
         cluster = LocalCluster(
-            n_workers=local_worker_count(cfg),
+            n_workers=workers,
             threads_per_worker=cfg.threads_per_worker,
             processes=cfg.processes,
             dashboard_address=cfg.dashboard_address,

@@ -361,7 +361,7 @@ def _execute(workdir: Workdir, config: Config, show_progress: bool, verify_all: 
         timings: dict[str, float] = {}
         fingerprints: dict[str, str] = {}
         summaries: dict[str, dict[str, Any]] = {}
-        with make_client(config.cluster) as client:
+        with make_client(config.cluster, config.run.memory_limit) as client:
             record["cluster"] = {"kind": config.cluster.kind, "dashboard": client.dashboard_link}
             workdir.write_run(record)
             for stage in stages():

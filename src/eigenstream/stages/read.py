@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream import budget
 from eigenstream.checkpoint import values_checksum
 from eigenstream.config import Config
 from eigenstream.core.moments import ColumnMoments
@@ -30,6 +31,7 @@ def preflight(config: Config) -> None:
     """Check, before any work starts, that the input opens and fits the settings."""
     with open_source(config.input, extra_columns=_extra_columns(config)) as src:
         check_row_count(config, src.n_rows, str(src.path))
+        budget.check(config, src.n_rows, len(src.columns))
 
 
 def check_row_count(config: Config, n_rows: int, where: str) -> None:
