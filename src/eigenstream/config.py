@@ -241,7 +241,14 @@ class RunConfig:
 
 @dataclass(frozen=True)
 class ClusterConfig:
-    """Which dask.distributed cluster runs the work (section ``[cluster]``)."""
+    """Which dask.distributed cluster runs the work (section ``[cluster]``).
+
+    ``kind`` picks the cluster: ``"local"`` (a LocalCluster on this machine), ``"address"``
+    (a running scheduler) or ``"slurm"`` / ``"pbs"`` (worker jobs submitted to a batch queue
+    through dask-jobqueue; the scheduler runs inside the driver). Keys that belong to another
+    kind than the one chosen are refused, so a typo in ``kind`` cannot go unnoticed. For the
+    job-queue kinds ``threads_per_worker`` is ``cores / processes_per_job`` and is filled in.
+    """
 
     kind: str = "local"
     address: str | None = None
@@ -249,20 +256,174 @@ class ClusterConfig:
     threads_per_worker: int = 1
     processes: bool = True
     dashboard_address: str = "127.0.0.1:0"
+    cores: int = 0
+    memory: str | None = None
+    walltime: str | None = None
+    queue: str | None = None
+    account: str | None = None
+    jobs: int = 1
+    processes_per_job: int = 1
+    job_extra: tuple[str, ...] = ()
+    interface: str | None = None
+    worker_wait_seconds: float = 600.0
+
+    KINDS = ("local", "address", "slurm", "pbs")
+    JOB_QUEUE_KINDS = ("slurm", "pbs")
+    # Which kinds read each key that is not common to all of them.
+    _KEY_KINDS = {
+        "address": ("address",),
+        "workers": ("local",),
+        "processes": ("local",),
+        "dashboard_address": ("local", "slurm", "pbs"),
+        "cores": JOB_QUEUE_KINDS,
+        "memory": JOB_QUEUE_KINDS,
+        "walltime": JOB_QUEUE_KINDS,
+        "queue": JOB_QUEUE_KINDS,
+        "account": JOB_QUEUE_KINDS,
+        "jobs": JOB_QUEUE_KINDS,
+        "processes_per_job": JOB_QUEUE_KINDS,
+        "job_extra": JOB_QUEUE_KINDS,
+        "interface": JOB_QUEUE_KINDS,
+        "worker_wait_seconds": ("address", "slurm", "pbs"),
+    }
+    # Workers retire this long before the walltime ends (at least), see walltime_seconds.
+    MIN_WALLTIME_SECONDS = 600
+    MIN_WORKER_MEMORY = 256 << 20
 
     def __post_init__(self) -> None:
-        _choice("cluster", "kind", self.kind, ("local", "address"))
+        _choice("cluster", "kind", self.kind, self.KINDS)
+        self._check_types()
+        self._check_kind_keys()
         if self.kind == "address" and not self.address:
             raise ConfigError(
                 '`[cluster] address` is required when `kind = "address"`, '
                 'e.g. address = "tcp://127.0.0.1:8786".'
             )
+        if self.kind in self.JOB_QUEUE_KINDS:
+            self._check_job_queue()
+
+    def _check_types(self) -> None:
         _opt_str("cluster", "address", self.address)
         _int("cluster", "workers", self.workers, 0)
         _int("cluster", "threads_per_worker", self.threads_per_worker, 1)
         if not isinstance(self.processes, bool):
             raise _fail("cluster", "processes", "true or false", self.processes)
         _opt_str("cluster", "dashboard_address", self.dashboard_address)
+        if self.kind not in self.JOB_QUEUE_KINDS:  # there, _check_job_queue says more
+            _int("cluster", "cores", self.cores, 0)
+        _int("cluster", "jobs", self.jobs, 1)
+        _int("cluster", "processes_per_job", self.processes_per_job, 1)
+        for key in ("queue", "account", "interface"):
+            value = getattr(self, key)
+            if value is not None and (
+                not isinstance(value, str) or not value or any(c.isspace() for c in value)
+            ):
+                raise _fail("cluster", key, "a non-empty name without spaces", value)
+        if self.memory is not None:
+            self.memory_bytes()
+        if self.walltime is not None:
+            self.walltime_seconds()
+        object.__setattr__(self, "job_extra", self._job_extra(self.job_extra))
+        object.__setattr__(
+            self, "worker_wait_seconds",
+            _number("cluster", "worker_wait_seconds", self.worker_wait_seconds, 0.0),
+        )
+        if self.worker_wait_seconds <= 0:
+            raise _fail("cluster", "worker_wait_seconds", "a number of seconds > 0",
+                        self.worker_wait_seconds)
+
+    def _job_extra(self, value: Any) -> tuple[str, ...]:
+        rule = ('a list of extra batch directives without their prefix, '
+                'e.g. ["--constraint=haswell"]')
+        if not isinstance(value, list | tuple) or not all(
+            isinstance(v, str) and v.strip() and "\n" not in v for v in value
+        ):
+            raise _fail("cluster", "job_extra", rule, value)
+        for line in value:
+            if line.lstrip().startswith("#"):
+                raise ConfigError(
+                    f"`[cluster] job_extra` entry {line!r} starts with '#': give the directive "
+                    "without its #SBATCH/#PBS prefix (it is added), e.g. \"--constraint=haswell\"."
+                )
+        return tuple(value)
+
+    def _check_kind_keys(self) -> None:
+        defaults = {f.name: f.default for f in dataclasses.fields(self)}
+        for key, kinds in self._KEY_KINDS.items():
+            if self.kind in kinds or getattr(self, key) == defaults[key]:
+                continue
+            names = " or ".join(f'"{k}"' for k in kinds)
+            raise ConfigError(
+                f"`[cluster] {key}` applies only to kind = {names}, not to "
+                f'kind = "{self.kind}"; remove it or change `kind`.'
+            )
+
+    def _check_job_queue(self) -> None:
+        kind = self.kind
+        if self.cores == 0 and not isinstance(self.cores, bool):  # 0 = left out
+            raise ConfigError(
+                f'`[cluster] cores` is required for kind = "{kind}": cores booked per worker '
+                "job, an integer >= 1, e.g. cores = 8."
+            )
+        if self.memory is None:
+            raise ConfigError(
+                f'`[cluster] memory` is required for kind = "{kind}": memory booked per '
+                'worker job, e.g. memory = "32GiB".'
+            )
+        if self.walltime is None:
+            raise ConfigError(
+                f'`[cluster] walltime` is required for kind = "{kind}": run time of each '
+                'worker job as "HH:MM:SS", e.g. walltime = "02:00:00".'
+            )
+        _int("cluster", "cores", self.cores, 1)
+        per_job = self.processes_per_job
+        if self.cores % per_job:
+            raise ConfigError(
+                f"`[cluster] processes_per_job` ({per_job}) must divide `[cluster] cores` "
+                f"({self.cores}) so every worker gets the same number of threads."
+            )
+        if self.memory_bytes() // per_job < self.MIN_WORKER_MEMORY:
+            raise ConfigError(
+                f"`[cluster] memory` = {self.memory!r} leaves less than 256 MiB for each of the "
+                f"{per_job} worker processes of a job; raise it or lower `processes_per_job`."
+            )
+        threads = self.cores // per_job
+        if self.threads_per_worker not in (1, threads):
+            raise ConfigError(
+                f"`[cluster] threads_per_worker` ({self.threads_per_worker}) must equal "
+                f"`cores` / `processes_per_job` = {threads} for kind = \"{kind}\"; leave it out."
+            )
+        object.__setattr__(self, "threads_per_worker", threads)
+
+    def memory_bytes(self) -> int:
+        """``memory`` per worker job in bytes."""
+        from dask.utils import parse_bytes
+
+        try:
+            value = parse_bytes(self.memory) if isinstance(self.memory, str) else -1
+        except (ValueError, TypeError):
+            value = -1
+        if value <= 0:
+            raise _fail("cluster", "memory", 'a size per job such as "32GiB"', self.memory)
+        return int(value)
+
+    def walltime_seconds(self) -> int:
+        """``walltime`` ("HH:MM:SS", hours may exceed 24) in seconds."""
+        import re
+
+        text = self.walltime
+        match = re.fullmatch(r"(\d{1,4}):([0-5]\d):([0-5]\d)", text) if isinstance(
+            text, str) else None
+        if match is None:
+            raise _fail("cluster", "walltime", 'a run time "HH:MM:SS" such as "02:00:00"', text)
+        hours, minutes, seconds = (int(g) for g in match.groups())
+        total = 3600 * hours + 60 * minutes + seconds
+        if total < self.MIN_WALLTIME_SECONDS:
+            raise ConfigError(
+                f"`[cluster] walltime` = {text!r} is too short: give at least \"00:10:00\" so "
+                "workers can do work and still retire before the queue stops them."
+            )
+        return total
 
 
 @dataclass(frozen=True)

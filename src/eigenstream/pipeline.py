@@ -297,7 +297,11 @@ def _run_record(workdir: Workdir, config: Config) -> Iterator[dict[str, Any]]:
     except BaseException as exc:
         stopped = isinstance(exc, KeyboardInterrupt) or type(exc).__name__ == "Interrupted"
         state = "interrupted" if stopped else "failed"
-        workdir.update_run(state=state, error=str(exc) or type(exc).__name__, finished=time.time())
+        try:
+            workdir.update_run(state=state, error=str(exc) or type(exc).__name__,
+                               finished=time.time())
+        except OSError:
+            pass  # a full disk: run.json still says "running", never "complete"
         raise
 
 

@@ -62,7 +62,7 @@ def read_json(path: Path) -> dict[str, Any] | None:
     try:
         with open(path, encoding="utf-8") as fh:
             return json.load(fh)
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):
         return None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise CheckpointError(

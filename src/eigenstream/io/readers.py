@@ -182,6 +182,10 @@ class RowSource:
     def _blocks(self, block_rows: int, start: int) -> Iterator[RowBlock]:
         raise NotImplementedError
 
+    def missing_rows(self) -> list[tuple[int, int]]:
+        """Row ranges whose storage is absent (read as a fill value); empty for most formats."""
+        return []
+
     def close(self) -> None:
         """Release the open file, if any. Safe to call twice."""
 
@@ -455,6 +459,28 @@ class _ZarrSource(_ArraySource):
         name = _pick_dataset(path, "zarr group", names, cfg.dataset)
         self.dataset = name
         self._setup(node[name], f"Array '{name}' in '{path}'")
+
+    def missing_rows(self) -> list[tuple[int, int]]:
+        """Row ranges (0-based, stop exclusive) whose chunks are not stored.
+
+        zarr reads an absent chunk as the fill value without an error, and by default does
+        not store chunks equal to the fill value, so an absent chunk may be lost or may be
+        legitimately all fill value; the caller reports it rather than refusing.
+        """
+        arr = self._array
+        root = getattr(arr.store, "root", None)
+        if root is None or getattr(arr.metadata, "zarr_format", 3) != 3:
+            return []
+        rows, cols = arr.chunks[0], arr.chunks[1]
+        n_col_chunks = -(-arr.shape[1] // cols)
+        out = []
+        for i in range(-(-arr.shape[0] // rows)):
+            for j in range(n_col_chunks):
+                key = Path(root) / arr.path / "c" / str(i) / str(j)
+                if not key.is_file():
+                    out.append((i * rows, min((i + 1) * rows, arr.shape[0])))
+                    break
+        return out
 
 
 class _Hdf5Source(_ArraySource):

@@ -25,7 +25,7 @@ from eigenstream.stages.features import graph_rows_spec
 log = logging.getLogger(__name__)
 
 
-def bandwidths(distances: np.ndarray, kernel_config) -> np.ndarray:
+def bandwidths(distances: np.ndarray, kernel_config, source: str = "the input") -> np.ndarray:
     """Per-row sigma: adaptive (k-th neighbour distance) or the configured global value."""
     n = distances.shape[0]
     if kernel_config.bandwidth != "adaptive":
@@ -35,8 +35,8 @@ def bandwidths(distances: np.ndarray, kernel_config) -> np.ndarray:
         return fill_zero_bandwidths(sigma)
     except ValueError:
         raise InputError(
-            "Every row is identical to its neighbours (all neighbour distances are 0): "
-            "there is no structure to embed; check the input columns."
+            f"Every row of {source} is identical to its neighbours (all neighbour distances "
+            "are 0): there is no structure to embed; check the input columns."
         ) from None
 
 
@@ -47,7 +47,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     distances = np.asarray(knn["distances"][...])
     n = indices.shape[0]
     with ctx.progress(4, "steps") as bar:
-        sigma = bandwidths(distances, config.kernel)
+        sigma = bandwidths(distances, config.kernel, config.input.path)
         weights = gaussian_weights(distances, sigma, sigma[indices])
         bar.update(1)
         K = symmetric_affinity(indices, weights, n, self_loops=True)

@@ -9,6 +9,7 @@ used by ``[prep] standardize``), and ``dropped.json`` listing rows dropped under
 from __future__ import annotations
 
 import json
+import logging
 from typing import Any
 
 import numpy as np
@@ -21,6 +22,8 @@ from eigenstream.errors import ConfigError, InputError
 from eigenstream.io import store
 from eigenstream.io.readers import bad_value_mask, describe_bad_value, open_source
 from eigenstream.pipeline import Stage, StageContext
+
+log = logging.getLogger(__name__)
 
 
 def _extra_columns(config: Config) -> list[str]:
@@ -37,11 +40,12 @@ def preflight(config: Config) -> None:
 def check_row_count(config: Config, n_rows: int, where: str) -> None:
     """Refuse settings that cannot work with ``n_rows`` rows."""
     if n_rows == 0:
-        raise InputError(f"{where} holds no rows; nothing to embed.")
+        raise InputError(f"'{where}' holds no rows; nothing to embed.")
     k = config.graph.neighbors
     if n_rows < k + 1:
         raise InputError(
-            f"{where} has {n_rows} rows but `[graph] neighbors` = {k} needs at least {k + 1}; "
+            f"'{where}' has {n_rows} row{'' if n_rows == 1 else 's'} but `[graph] neighbors` = "
+            f"{k} needs at least {k + 1}; "
             "lower `[graph] neighbors` or provide more rows."
         )
     c = config.embedding.components
@@ -60,6 +64,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         n, columns = src.n_rows, list(src.columns)
         group = ctx.store(mode="w")
         rows = ctx.array(group, "rows", shape=(n, len(columns)), chunk_rows=chunk, dtype=dtype)
+        _warn_missing(src)
         first, kept, dropped = _resume_point(ctx, rows)
         total = len(store.block_ranges(n, chunk))
         ctx.set_blocks_total(total)
@@ -100,6 +105,17 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             "source": str(src.path),
             "format": src.format,
         }
+
+
+def _warn_missing(src) -> None:
+    gaps = src.missing_rows()
+    if gaps:
+        spans = ", ".join(f"{a + 1}-{b}" for a, b in gaps[:5]) + (" ..." if len(gaps) > 5 else "")
+        log.warning(
+            "%s: the chunks holding rows %s are not stored, so they read as the fill value "
+            "(%s); restore them if they were lost", src.path, spans,
+            getattr(getattr(src, "_array", None), "fill_value", "unknown"),
+        )
 
 
 def _resume_point(ctx: StageContext, rows) -> tuple[int, int, list[Any]]:
