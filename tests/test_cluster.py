@@ -21,6 +21,7 @@ from pathlib import Path
 from types import SimpleNamespace
 from urllib.parse import urlparse
 
+import dask
 import numpy as np
 import psutil
 import pytest
@@ -459,6 +460,26 @@ def test_slurm_client_runs_the_job_script_and_cancels_it(fake_slurm, caplog):
     while any(map(_session_alive, sessions)) and time.monotonic() < deadline:
         time.sleep(0.1)
     assert not any(map(_session_alive, sessions))
+
+
+def test_dead_worker_job_is_replaced(fake_slurm):
+    cfg = ClusterConfig(kind="slurm", cores=1, memory="1GiB", walltime="00:10:00",
+                        interface="lo", worker_wait_seconds=60)
+    listed = fake_slurm / "sessions"
+    # dask waits distributed.deploy.lost-worker-timeout (15 s) before it gives up on a lost
+    # worker's job; shortened here so the test stays fast.
+    with dask.config.set({"distributed.deploy.lost-worker-timeout": "1s"}):
+        with make_client(cfg) as client:
+            first = list(client.scheduler_info()["workers"])
+            os.killpg(int(listed.read_text().split()[0]), signal.SIGKILL)  # the job "dies"
+            deadline = time.monotonic() + 30
+            while time.monotonic() < deadline:
+                now = list(client.scheduler_info()["workers"])
+                if len(listed.read_text().split()) == 2 and now and now != first:
+                    break
+                time.sleep(0.2)
+    assert len(listed.read_text().split()) == 2, "no replacement job was submitted"
+    assert now and now != first, "the replacement job's worker did not connect"
 
 
 def test_queued_job_that_never_starts_names_the_queue(fake_slurm, monkeypatch):

@@ -232,7 +232,7 @@ def _local_client(cfg: ClusterConfig, memory_limit: str | None) -> Iterator[Clie
         threads_per_worker=cfg.threads_per_worker,
         processes=cfg.processes,
         dashboard_address=cfg.dashboard_address,
-        silence_logs=logging.ERROR,
+        silence_logs=logging.CRITICAL,
         **network,
     )
     client = Client(cluster)
