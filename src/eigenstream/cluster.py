@@ -167,7 +167,11 @@ def make_client(cfg: ClusterConfig, memory_limit: str | None = None) -> Iterator
     """
     threads = str(cfg.threads_per_worker)
     environ = {name: threads for name in _THREAD_VARIABLES}
-    with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}), _quiet_dask_logs():
+    with (
+        dask.config.set({"distributed.nanny.pre-spawn-environ": environ}),
+        _quiet_dask_logs(),
+        _own_environment(),
+    ):
         if cfg.kind == "address":
             with _address_client(cfg) as client:
                 yield client
@@ -177,6 +181,28 @@ def make_client(cfg: ClusterConfig, memory_limit: str | None = None) -> Iterator
         else:
             with _local_client(cfg, memory_limit) as client:
                 yield client
+
+
+@contextmanager
+def _own_environment() -> Iterator[None]:
+    """Undo the thread variables dask's nannies leave in this process's environment.
+
+    Nannies of a local cluster live in this process and set their pre-spawn environment
+    here too (measured); numba then refuses to change its thread count in this process.
+    """
+    saved = {name: os.environ.get(name) for name in _THREAD_VARIABLES}
+
+    def restore() -> None:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
+
+    try:
+        yield
+    finally:
+        restore()
 
 
 @contextmanager
