@@ -121,7 +121,8 @@ def _extend_from_landmarks(ctx, everything, ranges, finished) -> None:
         bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
         for fut in as_completed(list(futures)):
             s, e, crc = fut.result()
-            ctx.mark_block(futures[fut], s, e, crc)
+            ctx.mark_block(futures.pop(fut), s, e, crc)
+            fut.release()  # a lost worker then need not recompute marked blocks
             bar.update(e - s)
             ctx.check_stop(f"rows {s + 1}-{e}")
 

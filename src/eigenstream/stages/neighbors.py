@@ -15,6 +15,12 @@ import numpy as np
 
 from eigenstream.checkpoint import values_checksum
 from eigenstream.core.neighbors import approximate_knn, exact_knn
+from eigenstream.core.shards import (
+    build_shard_index,
+    merge_candidates,
+    query_shard,
+    shard_ranges,
+)
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
 from eigenstream.stages.features import FeatureSpec, graph_rows_spec
@@ -41,6 +47,73 @@ def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> int:
     out["indices"][...] = idx
     out["distances"][...] = spec.distances_to_input_units(dist)
     return data.shape[0]
+
+
+def _shard_candidates(spec: FeatureSpec, out_path, shard: int, a: int, b: int, k: int,
+                      seed: int, n_jobs: int, block: int) -> int:
+    """Build shard ``shard``'s index and write every row's k candidates in it."""
+    index = build_shard_index(spec.load(a, b), k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
+    out = store.open_group(out_path, mode="r+")
+    cand_i, cand_d = out[f"shard{shard}/indices"], out[f"shard{shard}/distances"]
+    n = spec.n_rows
+    for s, e in store.block_ranges(n, block):
+        idx, dist = query_shard(index, spec.load(s, e), k, offset=a, row_ids=np.arange(s, e))
+        cand_i[s:e] = idx
+        cand_d[s:e] = dist
+    return shard
+
+
+def _merge_block(spec: FeatureSpec, out_path, shards: int, start: int, stop: int, k: int):
+    out = store.open_group(out_path, mode="r+")
+    lists = [
+        (np.asarray(out[f"shard{j}/indices"][start:stop]),
+         np.asarray(out[f"shard{j}/distances"][start:stop]))
+        for j in range(shards)
+    ]
+    idx, dist = merge_candidates(lists, k)
+    dist = spec.distances_to_input_units(dist)
+    out["indices"][start:stop] = idx
+    out["distances"][start:stop] = dist
+    return start, stop, values_checksum([idx, dist])
+
+
+def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k: int,
+             block: int, arrays) -> None:
+    """The sharded construction (core/shards.py): shard tasks, then merge tasks per block."""
+    from distributed import as_completed
+
+    config = ctx.config
+    ranges = shard_ranges(n, min(config.graph.shards, n // (k + 2)))
+    for j in range(len(ranges)):
+        for name, dtype in (("indices", np.int64), ("distances", np.float64)):
+            ctx.array(out, f"shard{j}/{name}", shape=(n, k), chunk_rows=block, dtype=dtype)
+    folder = ctx.workdir.stage_dir(ctx.name)
+    pending = [j for j in range(len(ranges)) if not (folder / f"shard{j}.done").exists()]
+    with ctx.progress(len(ranges), "shards", desc="neighbors (shard indexes)") as bar:
+        bar.update(len(ranges) - len(pending))
+        futures = [
+            ctx.client.submit(_shard_candidates, spec, out_path, j, *ranges[j], k,
+                              config.run.seed, config.cluster.threads_per_worker, block,
+                              pure=False)
+            for j in pending
+        ]
+        for fut in as_completed(futures):
+            (folder / f"shard{fut.result()}.done").write_text("{}")
+            bar.update(1)
+            ctx.check_stop("a shard index")
+    blocks = store.block_ranges(n, block)
+    ctx.set_blocks_total(len(blocks))
+    finished = ctx.finished_blocks(arrays)
+    merges = {
+        ctx.client.submit(_merge_block, spec, out_path, len(ranges), s, e, k, pure=False): i
+        for i, (s, e) in enumerate(blocks) if i not in finished
+    }
+    with ctx.progress(n, "rows", desc="neighbors (merge)") as bar:
+        for fut in as_completed(list(merges)):
+            s, e, crc = fut.result()
+            ctx.mark_block(merges.pop(fut), s, e, crc)
+            fut.release()
+            bar.update(e - s)
 
 
 def choose_method(config, n_rows: int) -> str:
@@ -80,15 +153,20 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
             for fut in _as_completed(list(futures)):
                 s, e, crc = fut.result()
-                ctx.mark_block(futures[fut], s, e, crc)
+                ctx.mark_block(futures.pop(fut), s, e, crc)
+                fut.release()  # a lost worker then need not recompute marked blocks
                 bar.update(e - s)
                 ctx.check_stop(f"rows {s + 1}-{e}")
+    elif config.graph.shards > 1:
+        _sharded(ctx, spec, out, out_path, n, k, block, arrays)
     else:
         n_jobs = config.cluster.threads_per_worker
         fut = client.submit(_approximate_all, spec, out_path, k, config.run.seed, n_jobs,
                             pure=False)
         with ctx.progress(n, "rows") as bar:
             bar.update(fut.result())
+    if method == "approximate" and config.graph.shards > 1:
+        method = f"approximate, {config.graph.shards} shards"
     return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": spec.unit}
 
 
@@ -106,6 +184,7 @@ STAGE = Stage(
         "graph.metric",
         "graph.method",
         "graph.exact_max_rows",
+        "graph.shards",
         "run.seed",
         "cluster.threads_per_worker",
     ),
