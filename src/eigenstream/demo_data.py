@@ -23,13 +23,13 @@ The profiles carry structure a spectral map should recover:
 from __future__ import annotations
 
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from eigenstream.errors import ConfigError
+from eigenstream.io.atomic import atomic_path
 
 __all__ = [
     "EV_SHARE",
@@ -346,20 +346,12 @@ def write_demo_table(
         ]
     )
     path = Path(path)
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
-    try:
-        with pq.ParquetWriter(tmp_name, schema) as writer:
-            for start in range(0, n_rows, block_rows):
-                rows = _rows(house, seed, start, min(start + block_rows, n_rows))
-                readings = rows.pop("readings")
-                arrays = [pa.array(rows[ID_COLUMN])]
-                arrays += [pa.array(readings[:, j]) for j in range(readings.shape[1])]
-                arrays += [pa.array(rows[name]) for name in LABEL_COLUMNS]
-                writer.write_table(pa.Table.from_arrays(arrays, schema=schema))
-        os.chmod(tmp_name, 0o644)  # mkstemp creates 0600; the demo table is meant to be shared
-        os.replace(tmp_name, path)
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
+    with atomic_path(path) as tmp, pq.ParquetWriter(tmp, schema) as writer:
+        for start in range(0, n_rows, block_rows):
+            rows = _rows(house, seed, start, min(start + block_rows, n_rows))
+            readings = rows.pop("readings")
+            arrays = [pa.array(rows[ID_COLUMN])]
+            arrays += [pa.array(readings[:, j]) for j in range(readings.shape[1])]
+            arrays += [pa.array(rows[name]) for name in LABEL_COLUMNS]
+            writer.write_table(pa.Table.from_arrays(arrays, schema=schema))
     return path

@@ -98,6 +98,23 @@ class StageContext:
         )
         fault_point(self.name, self.workdir.stage_dir(self.name))
 
+    def collect_blocks(self, futures: dict, ranges, finished, *, desc: str | None = None) -> None:
+        """Wait for row-block tasks (future -> block number) returning (start, stop, crc).
+
+        Each block is marked as soon as its task finishes and its result released (so a lost
+        worker does not make dask recompute it); progress counts rows, finished ones included.
+        """
+        from distributed import as_completed
+
+        with self.progress(ranges[-1][1] if ranges else 0, "rows", desc=desc) as bar:
+            bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
+            for fut in as_completed(list(futures)):
+                s, e, crc = fut.result()
+                self.mark_block(futures.pop(fut), s, e, crc)
+                fut.release()
+                bar.update(e - s)
+                self.check_stop(f"rows {s + 1}-{e}")
+
     def set_blocks_total(self, total: int) -> None:
         """Tell ``status`` how many blocks this stage has."""
         state = self.workdir.stage_state(self.name) or {}

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -23,6 +22,7 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import MaxNLocator
 
 from eigenstream.errors import ConfigError, InputError
+from eigenstream.io.atomic import atomic_path
 
 __all__ = ["plot_map", "plot_spectrum"]
 
@@ -67,16 +67,9 @@ def _save(fig: Figure, path: str | os.PathLike) -> Path:
     if not parent.is_dir():
         raise ConfigError(f"plot path {path}: directory {parent} does not exist; create it first")
     fmt = path.suffix.lstrip(".").lower() or "png"
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=parent)
-    os.close(fd)
-    try:
+    with atomic_path(path) as tmp:
         FigureCanvasAgg(fig)
-        fig.savefig(tmp_name, format=fmt, dpi=_DPI)
-        os.chmod(tmp_name, 0o644)  # mkstemp creates 0600; pictures are meant to be shared
-        os.replace(tmp_name, path)
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
+        fig.savefig(tmp, format=fmt, dpi=_DPI)
     return path
 
 

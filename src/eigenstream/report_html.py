@@ -15,12 +15,12 @@ import json
 import math
 import os
 import re
-import tempfile
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 from eigenstream.errors import ConfigError, InputError
+from eigenstream.io.atomic import atomic_path
 
 __all__ = ["build_report", "write_report", "SECTION_IDS"]
 
@@ -766,15 +766,8 @@ def write_report(
             f"report path {path}: directory {path.parent} does not exist; create it first"
         )
     text = build_report(info, images=images, tune=tune)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o644)  # mkstemp creates 0600; a report is meant to be shared
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
+        fh.write(text)
+        fh.flush()
+        os.fsync(fh.fileno())
     return path

@@ -20,7 +20,6 @@ import json
 import os
 import shutil
 import socket
-import tempfile
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -28,6 +27,7 @@ from pathlib import Path
 from typing import Any
 
 from eigenstream.errors import CheckpointError
+from eigenstream.io.atomic import atomic_path
 
 RUN_FILE = "run.json"
 LOCK_FILE = "lock"
@@ -36,17 +36,10 @@ STAGE_FILE = "stage.json"
 
 def write_json_atomic(path: Path, obj: Any) -> None:
     """Write ``obj`` as JSON to ``path`` through a temporary file and a rename."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=2, sort_keys=True, default=_json_default)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(obj, fh, indent=2, sort_keys=True, default=_json_default)
+        fh.flush()
+        os.fsync(fh.fileno())
 
 
 def _json_default(obj: Any) -> Any:

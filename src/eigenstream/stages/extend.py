@@ -106,8 +106,6 @@ def _copy_diffusion_coordinates(ctx, solved, coords, ranges, finished) -> None:
 
 
 def _extend_from_landmarks(ctx, everything, ranges, finished) -> None:
-    from distributed import as_completed
-
     graph = graph_rows_spec(ctx.workdir, ctx.config)
     settings = settings_of(ctx.config)
     out_path = str(ctx.workdir.stage_store(ctx.name))
@@ -117,14 +115,7 @@ def _extend_from_landmarks(ctx, everything, ranges, finished) -> None:
         for number, (s, e) in enumerate(ranges)
         if number not in finished
     }
-    with ctx.progress(ranges[-1][1] if ranges else 0, "rows", desc="extend (Nystrom)") as bar:
-        bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
-        for fut in as_completed(list(futures)):
-            s, e, crc = fut.result()
-            ctx.mark_block(futures.pop(fut), s, e, crc)
-            fut.release()  # a lost worker then need not recompute marked blocks
-            bar.update(e - s)
-            ctx.check_stop(f"rows {s + 1}-{e}")
+    ctx.collect_blocks(futures, ranges, finished, desc="extend (Nystrom)")
 
 
 STAGE = Stage(

@@ -108,12 +108,7 @@ def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k
         ctx.client.submit(_merge_block, spec, out_path, len(ranges), s, e, k, pure=False): i
         for i, (s, e) in enumerate(blocks) if i not in finished
     }
-    with ctx.progress(n, "rows", desc="neighbors (merge)") as bar:
-        for fut in as_completed(list(merges)):
-            s, e, crc = fut.result()
-            ctx.mark_block(merges.pop(fut), s, e, crc)
-            fut.release()
-            bar.update(e - s)
+    ctx.collect_blocks(merges, blocks, finished, desc="neighbors (merge)")
 
 
 def choose_method(config, n_rows: int) -> str:
@@ -149,14 +144,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             for number, (s, e) in enumerate(ranges)
             if number not in finished
         }
-        with ctx.progress(n, "rows") as bar:
-            bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
-            for fut in _as_completed(list(futures)):
-                s, e, crc = fut.result()
-                ctx.mark_block(futures.pop(fut), s, e, crc)
-                fut.release()  # a lost worker then need not recompute marked blocks
-                bar.update(e - s)
-                ctx.check_stop(f"rows {s + 1}-{e}")
+        ctx.collect_blocks(futures, ranges, finished)
     elif config.graph.shards > 1:
         _sharded(ctx, spec, out, out_path, n, k, block, arrays)
     else:
@@ -168,12 +156,6 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     if method == "approximate" and config.graph.shards > 1:
         method = f"approximate, {config.graph.shards} shards"
     return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": spec.unit}
-
-
-def _as_completed(futures):
-    from distributed import as_completed
-
-    return as_completed(futures)
 
 
 STAGE = Stage(
