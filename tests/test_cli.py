@@ -194,3 +194,23 @@ def test_demo_end_to_end_with_worker_processes(tmp_path):
     manifest = json.loads((run_dir / "manifest.json").read_text())
     assert manifest["rows"] == 1500
     assert max(manifest["residuals"]) < 1e-6
+
+
+def test_fresh_never_follows_a_link_out_of_the_workdir(tmp_path):
+    import shutil
+
+    np.save(tmp_path / "ok.npy", np.random.default_rng(0).standard_normal((60, 3)))
+    cfg = write_config(tmp_path, 'path = "ok.npy"')
+    assert cli("run", cfg)[0] == 0
+    work = tmp_path / "work"
+    outside = tmp_path / "precious"
+    outside.mkdir()
+    (outside / "keep.txt").write_text("mine")
+    shutil.rmtree(work / "quality")
+    (work / "quality").symlink_to(outside, target_is_directory=True)
+    (work / "map.png").unlink()
+    (work / "map.png").symlink_to(outside / "keep.txt")
+    code, _, err = cli("run", cfg, "--fresh")
+    assert code == 0, err
+    assert (outside / "keep.txt").read_text() == "mine"  # the links went, their targets stayed
+    assert (work / "quality").is_dir() and not (work / "quality").is_symlink()

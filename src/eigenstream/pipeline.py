@@ -151,7 +151,8 @@ def fault_point(stage: str, folder: Path) -> None:
     """Crash-test hooks, inert unless their environment variable is set.
 
     ``EIGENSTREAM_KILL_AT="stage:k"`` kills this process with SIGKILL right after the k-th
-    checkpoint (block marker, or Lanczos checkpoint for ``solve``) it writes in that stage.
+    checkpoint (block marker, or Lanczos checkpoint for ``solve``) it writes in that stage;
+    ``"stage-start:1"`` kills it when the stage starts (after its state says partial).
     ``EIGENSTREAM_PAUSE_AFTER_BLOCK="stage:k"`` instead creates ``<stage>/paused`` there and
     waits (at most 120 s) for SIGINT/SIGTERM, so a test can signal a run at a known point.
     """
@@ -341,6 +342,7 @@ def run_pipeline(
 
     config = coerce_config(config, overrides)
     preflight(config)
+    log.info("input: %s; work directory: %s", config.input.path, config.run.workdir)
     workdir = Workdir(config.run.workdir)
     workdir.create()
     with workdir.locked(), stop_on_signals():
@@ -443,6 +445,7 @@ def _run_stage(
         ctx.workdir.write_stage_state(
             stage.name, {"state": "partial", "fingerprint": fp, "depends": depends}
         )
+    fault_point(f"{stage.name}-start", ctx.workdir.stage_dir(stage.name))
     t0 = time.perf_counter()
     try:
         summary = stage.run(ctx)
