@@ -45,7 +45,7 @@ def test_exact_poisson_law_is_recovered(rng, d):
 
 
 def test_per_k_formula_and_average(rng):
-    # Direct transcription of m_k = [mean_x (1/(k-1)) sum_{j<k} log(T_k/T_j)]^-1 (methods.md §6).
+    # Direct evaluation of m_k = [mean_x (1/(k-1)) sum_{j<k} log(T_k/T_j)]^-1 (methods.md §6).
     _, dist = exact_knn(rng.normal(size=(300, 4)), 20)
     per_k = levina_bickel_per_k(dist, [12, 5, 20])
     assert list(per_k) == [12, 5, 20]
