@@ -233,3 +233,21 @@ def test_sigterm_stops_after_the_current_block_and_says_how_to_resume(reference,
     assert state["state"] == "interrupted" and state["blocks"]["neighbors"]["done"] == 3
     assert run_cli("run", cfg).returncode == 0
     assert np.max(np.abs(coords(tmp_path / "work") - expected)) <= 1e-6
+
+
+def test_a_lock_from_another_host_is_taken_over_only_when_silent(tmp_path):
+    # A killed batch job leaves a lock naming its node; the next driver runs elsewhere. The
+    # holder refreshes the lock every 30 s; one silent for 2 minutes is stale (ours).
+    np.save(tmp_path / "rows.npy", make_rows())
+    cfg = write_config(tmp_path)
+    work = tmp_path / "work"
+    work.mkdir()
+    lock = work / "lock"
+    lock.write_text(json.dumps({"host": "node-that-died", "pid": 4242, "since": time.time()}))
+    proc = run_cli("run", cfg)
+    assert proc.returncode == 4 and "node-that-died" in proc.stderr  # fresh: still held
+    old = time.time() - 600
+    os.utime(lock, (old, old))
+    proc = run_cli("run", cfg, quiet=False)
+    assert proc.returncode == 0, proc.stderr
+    assert "stale lock" in proc.stderr and not lock.exists()

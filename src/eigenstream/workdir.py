@@ -17,9 +17,11 @@ sees half a file. Only runners (``eigenstream.stages``) and the pipeline touch t
 from __future__ import annotations
 
 import json
+import logging
 import os
 import shutil
 import socket
+import threading
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -28,6 +30,8 @@ from typing import Any
 
 from eigenstream.errors import CheckpointError
 from eigenstream.io.atomic import atomic_path
+
+log = logging.getLogger(__name__)
 
 RUN_FILE = "run.json"
 LOCK_FILE = "lock"
@@ -61,6 +65,29 @@ def read_json(path: Path) -> dict[str, Any] | None:
         raise CheckpointError(
             f"{path} is damaged ({exc}); rerun with --fresh to start this work directory again."
         ) from None
+
+
+LOCK_HEARTBEAT = 30.0
+LOCK_STALE = 120.0
+
+
+def _heartbeat(lock: Path, stop: threading.Event) -> None:
+    while not stop.wait(LOCK_HEARTBEAT):
+        try:
+            os.utime(lock)
+        except OSError:
+            return
+
+
+def _stale(lock: Path, holder: dict, host: str) -> bool:
+    """Is the lock left by a process that is gone (this host) or silent (another host)?"""
+    if holder.get("host") == host:
+        return not _pid_alive(int(holder.get("pid", -1)))
+    try:
+        age = time.time() - lock.stat().st_mtime
+    except OSError:
+        return True
+    return age > LOCK_STALE
 
 
 def _pid_alive(pid: int) -> bool:
@@ -170,7 +197,10 @@ class Workdir:
     def locked(self) -> Iterator[None]:
         """Hold the work directory's lock for the duration of a ``with`` block.
 
-        A lock left by a process that no longer exists on this host is taken over.
+        The holder refreshes the lock's modification time every ``LOCK_HEARTBEAT`` seconds.
+        A lock is stale, and taken over with a message, when its process no longer exists on
+        this host, or when it was written on another host (a killed batch job's node) and has
+        not been refreshed for ``LOCK_STALE`` seconds.
         """
         lock = self.path / LOCK_FILE
         me = {"host": socket.gethostname(), "pid": os.getpid(), "since": time.time()}
@@ -179,8 +209,9 @@ class Workdir:
                 fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
                 holder = read_json(lock) or {}
-                same_host = holder.get("host") == me["host"]
-                if same_host and not _pid_alive(int(holder.get("pid", -1))):
+                if _stale(lock, holder, me["host"]):
+                    log.warning("taking over the stale lock of process %s on host %s",
+                                holder.get("pid"), holder.get("host"))
                     lock.unlink(missing_ok=True)
                     continue
                 raise CheckpointError(
@@ -191,7 +222,11 @@ class Workdir:
             with os.fdopen(fd, "w") as fh:
                 json.dump(me, fh)
             break
+        stop = threading.Event()
+        beat = threading.Thread(target=_heartbeat, args=(lock, stop), daemon=True)
+        beat.start()
         try:
             yield
         finally:
+            stop.set()
             lock.unlink(missing_ok=True)
