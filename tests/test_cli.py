@@ -214,3 +214,21 @@ def test_fresh_never_follows_a_link_out_of_the_workdir(tmp_path):
     assert code == 0, err
     assert (outside / "keep.txt").read_text() == "mine"  # the links went, their targets stayed
     assert (work / "quality").is_dir() and not (work / "quality").is_symlink()
+
+
+def test_values_finer_than_float32_are_reported(tmp_path):
+    # float32 has a 24-bit significand (IEEE 754): near 100 its step is 7.6e-6, so a cloud of
+    # spread 1e-6 centred at 100 collapses when stored as float32. The run says why (one
+    # warning line naming the columns and the fix) before refusing the collapsed rows; with
+    # float64 storage the same table maps.
+    rng = np.random.default_rng(4)
+    X = 100.0 + 1e-6 * rng.standard_normal((80, 3))
+    X[:40] += 1.0
+    np.save(tmp_path / "fine.npy", X)
+    cfg = write_config(tmp_path, 'path = "fine.npy"')
+    code, _, err = cli("run", cfg)
+    assert code == 3 and "Traceback" not in err, err
+    [line] = [ln for ln in err.splitlines() if "stored as float32" in ln]
+    assert "fine.npy" in line and 'dtype = "float64"' in line and "78 rows" in line
+    code, _, err = cli("run", cfg, "--set", 'run.dtype="float64"', "--fresh")
+    assert code == 0 and "float32" not in err, err

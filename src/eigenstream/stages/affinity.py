@@ -36,7 +36,8 @@ def bandwidths(distances: np.ndarray, kernel_config, source: str = "the input") 
     except ValueError:
         raise InputError(
             f"Every row of {source} is identical to its neighbours (all neighbour distances "
-            "are 0): there is no structure to embed; check the input columns."
+            "are 0): there is no structure to embed; check the input columns (or set "
+            '`[run] dtype = "float64"` if they differ only in fine digits).'
         ) from None
 
 

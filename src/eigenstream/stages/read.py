@@ -66,6 +66,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         rows = ctx.array(group, "rows", shape=(n, len(columns)), chunk_rows=chunk, dtype=dtype)
         _warn_missing(src)
         first, kept, dropped = _resume_point(ctx, rows)
+        collapsed = 0
         total = len(store.block_ranges(n, chunk))
         ctx.set_blocks_total(total)
         with ctx.progress(n, "rows") as bar:
@@ -74,6 +75,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
                 values, ids, extra, lost = _clean(block, config, columns, src)
                 m = values.shape[0]
                 stored = values.astype(dtype, copy=False)
+                collapsed += _collapsed_rows(values, stored)
                 rows[kept : kept + m] = stored
                 _write_side(ctx, group, "ids", ids, kept, n, chunk)
                 for col in extra.values():
@@ -83,6 +85,12 @@ def _run(ctx: StageContext) -> dict[str, Any]:
                 kept += m
                 bar.update(len(block.values))
                 ctx.check_stop(f"block {number + 1} of {total}")
+        if collapsed:
+            log.warning(
+                "'%s': %d rows became identical to another row when stored as %s (they "
+                'differ only in digits it cannot hold); set `[run] dtype = "float64"` to keep '
+                "them apart", src.path, collapsed, dtype.name,
+            )
         if kept < n:
             _shrink(group, kept)
         check_row_count(config, kept, f"{src.path} (after dropping {len(dropped)} bad rows)")
@@ -105,6 +113,14 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             "source": str(src.path),
             "format": src.format,
         }
+
+
+def _collapsed_rows(values: np.ndarray, stored: np.ndarray) -> int:
+    """Rows of a block that distinct input values no longer tell apart after the cast."""
+    if stored.dtype == values.dtype or len(values) < 2:
+        return 0
+    before = len(np.unique(values, axis=0))
+    return before - len(np.unique(stored, axis=0))
 
 
 def _warn_missing(src) -> None:
