@@ -76,11 +76,7 @@ def continuity(
     Penalises rows that are among the k nearest in ``X`` but pushed beyond rank k in ``Y``.
     Parameters and return value as in :func:`trustworthiness`.
     """
-    X, Y = _check_pair(X, Y)
-    n = X.shape[0]
-    k = _check_k(n_neighbors, n, half=True)
-    ranks = neighbor_ranks(Y, X, n_neighbors=k, rows=_query_rows(n, sample, rng))
-    return _from_ranks(ranks, n, k)
+    return trustworthiness(Y, X, n_neighbors=n_neighbors, sample=sample, rng=rng)
 
 
 def knn_preservation(

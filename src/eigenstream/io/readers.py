@@ -740,17 +740,10 @@ class _ParquetSource(RowSource):
             for batch in self._file.iter_batches(
                 batch_size=block_rows, row_groups=groups, columns=wanted
             ):
-                if skip:
-                    cut = min(skip, batch.num_rows)
-                    batch = batch.slice(cut)
-                    skip -= cut
-                if batch.num_rows == 0:
-                    continue
-                yield (
-                    _columns_to_matrix(batch, self.columns, out_dtype),
-                    _column_values(batch, self.id_name) if self.id_name else None,
-                    {name: _column_values(batch, name) for name in self.extra_names},
-                )
+                cut = min(skip, batch.num_rows)
+                skip -= cut
+                if batch.num_rows > cut:
+                    yield _batch_parts(batch.slice(cut), self, out_dtype)
         except (pa.ArrowException, OSError) as exc:
             raise InputError(
                 f"Cannot read '{self.path}' ({exc}); the Parquet file may be truncated or damaged."
@@ -1065,17 +1058,10 @@ class _CsvSource(RowSource):
         seen = fast_skip
         for batch in self._stream(reader):
             seen += batch.num_rows
-            if skip:
-                cut = min(skip, batch.num_rows)
-                batch = batch.slice(cut)
-                skip -= cut
-            if batch.num_rows == 0:
-                continue
-            yield (
-                _columns_to_matrix(batch, self.columns, out_dtype),
-                _column_values(batch, self.id_name) if self.id_name else None,
-                {name: _column_values(batch, name) for name in self.extra_names},
-            )
+            cut = min(skip, batch.num_rows)
+            skip -= cut
+            if batch.num_rows > cut:
+                yield _batch_parts(batch.slice(cut), self, out_dtype)
         if seen != self.n_rows:
             raise InputError(
                 f"'{self.path}' changed while being read or could not be counted: expected "
@@ -1085,6 +1071,15 @@ class _CsvSource(RowSource):
 
 # ----------------------------------------------------------------------------------------
 # bad values
+
+
+def _batch_parts(batch, source, out_dtype):
+    """(values, ids, extra columns) of one Arrow record batch of a table source."""
+    return (
+        _columns_to_matrix(batch, source.columns, out_dtype),
+        _column_values(batch, source.id_name) if source.id_name else None,
+        {name: _column_values(batch, name) for name in source.extra_names},
+    )
 
 
 def bad_value_mask(values: Any) -> np.ndarray:
