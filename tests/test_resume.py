@@ -251,3 +251,23 @@ def test_a_lock_from_another_host_is_taken_over_only_when_silent(tmp_path):
     proc = run_cli("run", cfg, quiet=False)
     assert proc.returncode == 0, proc.stderr
     assert "stale lock" in proc.stderr and not lock.exists()
+
+
+def test_kill_during_lobpcg_resumes_from_the_saved_round(reference, tmp_path):
+    # The LOBPCG path (used by default from 50,000 rows) checkpoints its block after every
+    # round; oracle: the uninterrupted LOBPCG run with the same settings.
+    np.save(tmp_path / "rows.npy", make_rows())
+    cfg = write_config(tmp_path)
+    settings = ["--set", "solver.method=lobpcg", "--set", "solver.tol=1e-11"]
+    whole = run_cli("run", cfg, "--set", "run.workdir=whole", *settings)
+    assert whole.returncode == 0, whole.stderr
+    killed = run_cli("run", cfg, *settings, kill_at="solve:1")
+    assert killed.returncode == -signal.SIGKILL
+    resumed = run_cli("run", cfg, *settings, quiet=False)
+    assert resumed.returncode == 0, resumed.stderr
+    assert "continuing from the checkpoint of lobpcg" in resumed.stderr
+    summary = json.loads((tmp_path / "work" / "solve" / "stage.json").read_text())["summary"]
+    assert summary["solver"] == "lobpcg" and summary["resumed_from_restart"] >= 1
+    assert np.max(np.abs(coords(tmp_path / "work") - coords(tmp_path / "whole"))) <= 1e-6
+    # and LOBPCG's map is the Lanczos map of the module's reference run (same operator)
+    assert np.max(np.abs(coords(tmp_path / "work") - reference[1])) <= 1e-6

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
+import scipy.sparse
 from scipy.sparse.linalg import ArpackNoConvergence, LinearOperator, aslinearoperator, eigsh
 
 from eigenstream.errors import EigenstreamWarning, NotConverged
@@ -416,6 +417,21 @@ class Embedding:
     psi: np.ndarray
     coordinates: np.ndarray
     matvecs: int
+    passes: int = 0
+    steps: int = 0
+
+
+# From this many rows up, "auto" picks LOBPCG + AMG when the kernel is in memory: below it
+# restarted Lanczos needs few enough products (a few hundred to ~2,500 at 32k rows, methods.md
+# §9.10) and keeps its exact-multiplicity check.
+LOBPCG_FROM_ROWS = 50_000
+
+
+def choose_solver(method: str, n: int, *, matrix_in_memory: bool) -> str:
+    """The solver "auto" stands for ("lobpcg" or "lanczos"); other names pass through."""
+    if method != "auto":
+        return method
+    return "lobpcg" if matrix_in_memory and n >= LOBPCG_FROM_ROWS else "lanczos"
 
 
 def solve_embedding(
@@ -451,12 +467,15 @@ def solve_embedding(
         Search again for exactly repeated eigenvalues (see :func:`leading_eigenpairs`); about
         doubles the matvecs. Exact repeats need an exact symmetry (grids, cycles); sampled
         data only has near-repeats, which the first search resolves.
-    solver : {"lanczos", "arpack"}, default="lanczos"
+    solver : {"lanczos", "arpack", "lobpcg", "auto"}, default="lanczos"
         Our thick-restart Lanczos (:mod:`eigenstream.core.lanczos`, restartable from a saved
-        state) or scipy's ARPACK ``eigsh``.
+        state), scipy's ARPACK ``eigsh``, or LOBPCG with an algebraic-multigrid preconditioner
+        (:mod:`eigenstream.core.amg_lobpcg`; needs K as a sparse matrix). "auto": see
+        :func:`choose_solver`.
     state, on_restart : optional
-        Lanczos only: resume from a :class:`~eigenstream.core.lanczos.LanczosState`, and a
-        callback receiving the state after every restart (for checkpoints).
+        Lanczos: resume from a :class:`~eigenstream.core.lanczos.LanczosState`, and a callback
+        receiving the state after every restart (for checkpoints). LOBPCG: the same with a
+        :class:`~eigenstream.core.amg_lobpcg.BlockState` after every round.
 
     Returns
     -------
@@ -473,7 +492,21 @@ def solve_embedding(
     noise = np.random.default_rng(seed).standard_normal(n)
     v0 = sqrt_d / np.linalg.norm(sqrt_d) + _V0_NOISE * noise / np.sqrt(n)
     count = min(n, components + 1 + _EXTRA_PAIRS)
-    if solver == "lanczos":
+    solver = choose_solver(solver, n, matrix_in_memory=scipy.sparse.issparse(K_or_matvec))
+    passes = steps = 0
+    if solver == "lobpcg":
+        from eigenstream.core.amg_lobpcg import amg_lobpcg, normalized_laplacian
+
+        if not scipy.sparse.issparse(K_or_matvec):
+            raise ValueError("solver 'lobpcg' needs the kernel as a sparse matrix.")
+        block = amg_lobpcg(
+            normalized_laplacian(K_or_matvec, scale), sqrt_d, count, tol=tol,
+            max_matvecs=max_matvecs, rng=seed, state=state, on_round=on_restart,
+        )
+        result = SpectralResult(values=block.values, vectors=block.vectors,
+                                matvecs=block.matvecs)
+        passes, steps = block.passes, block.steps
+    elif solver == "lanczos":
         from eigenstream.core.lanczos import thick_restart_lanczos
 
         result = thick_restart_lanczos(
@@ -486,7 +519,7 @@ def solve_embedding(
             check_multiplicity=check_multiplicity,
         )
     else:
-        raise ValueError(f"solver must be 'lanczos' or 'arpack'; got {solver!r}.")
+        raise ValueError(f"solver must be 'lanczos', 'arpack' or 'lobpcg'; got {solver!r}.")
     values, u = drop_trivial(result.values, result.vectors, sqrt_d)
     values, u = values[:components], fix_signs(u[:, :components])
     residuals = relative_residuals(op, values, u)
@@ -498,4 +531,6 @@ def solve_embedding(
         psi=psi,
         coordinates=coords,
         matvecs=result.matvecs + components,
+        passes=passes,
+        steps=steps,
     )

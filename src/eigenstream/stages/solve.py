@@ -1,7 +1,9 @@
 """Solve stage: leading eigenpairs of A = D^-1/2 Q^-a K Q^-a D^-1/2 through its matvec.
 
 The matvec reads K from ``affinity/data.zarr`` (from memory when it fits, else streamed row
-block by row block). Outputs in ``solve/data.zarr``: ``eigenvalues`` (descending, trivial one
+block by row block). ``[solver] method = "auto"`` uses LOBPCG with a multigrid preconditioner
+from 50,000 rows up when K fits in memory, else our thick-restart Lanczos. Both save their
+state to ``solve/checkpoint`` (after Lanczos restarts / LOBPCG rounds) for resuming. Outputs in ``solve/data.zarr``: ``eigenvalues`` (descending, trivial one
 removed), ``residuals`` (relative, one per pair) and ``psi`` (n, components), the right
 eigenvectors of the Markov matrix with signs fixed by the documented rule.
 """
@@ -17,8 +19,9 @@ from typing import Any
 import numpy as np
 
 from eigenstream.checkpoint import STOP
+from eigenstream.core.amg_lobpcg import BlockState
 from eigenstream.core.lanczos import LanczosState
-from eigenstream.core.spectral import solve_embedding
+from eigenstream.core.spectral import choose_solver, solve_embedding
 from eigenstream.io import store
 from eigenstream.io.graphstore import StoredCSR
 from eigenstream.pipeline import Stage, StageContext, fault_point
@@ -34,21 +37,30 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     K = StoredCSR(graph_path)
     scale = np.asarray(aff["scale"][...])
     degrees = np.asarray(aff["degrees"][...])
-    lanczos = config.solver.method == "lanczos"
-    state = load_checkpoint(ctx) if lanczos and ctx.resuming else None
+    solver = choose_solver(config.solver.method, K.n, matrix_in_memory=K.in_memory)
+    state = load_checkpoint(ctx, solver) if ctx.resuming else None
     if state is not None:
-        log.info("solve: continuing from the checkpoint after restart %d (%d products so far)",
-                 state.restarts, state.matvecs)
-    with ctx.progress(None, "matvec", desc="solve (Lanczos passes)") as bar:
+        log.info("solve: continuing from the checkpoint of %s (%d products so far)",
+                 solver, state.matvecs)
+    unit = "round" if solver == "lobpcg" else "matvec"
+    desc = "solve (LOBPCG rounds)" if solver == "lobpcg" else "solve (Lanczos passes)"
+    with ctx.progress(None, unit, desc=desc) as bar:
         if state is not None:
-            bar.update(state.matvecs)
+            bar.update(state.rounds if solver == "lobpcg" else state.matvecs)
+        save = checkpoint_writer(ctx, solver) if config.run.checkpoints else None
 
         def counted(x: np.ndarray) -> np.ndarray:
             bar.update(1)
             return K.matvec(x)
 
+        def on_state(new_state) -> None:
+            if solver == "lobpcg":
+                bar.update(1)
+            if save is not None:
+                save(new_state)
+
         emb = solve_embedding(
-            counted,
+            K.to_scipy() if solver == "lobpcg" else counted,
             scale,
             degrees,
             components=config.embedding.components,
@@ -57,9 +69,9 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             max_matvecs=config.solver.max_matvecs,
             seed=config.run.seed,
             check_multiplicity=config.solver.check_multiplicity,
-            solver=config.solver.method,
+            solver=solver,
             state=state,
-            on_restart=checkpoint_writer(ctx) if lanczos and config.run.checkpoints else None,
+            on_restart=on_state if solver in ("lanczos", "lobpcg") else None,
         )
     clear_checkpoint(ctx)
     out = ctx.store(mode="w")
@@ -72,29 +84,39 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         "eigenvalues": emb.eigenvalues.tolist(),
         "residuals": emb.residuals.tolist(),
         "matvecs": int(emb.matvecs),
+        "graph_passes": int(emb.passes or emb.matvecs),
+        "lobpcg_steps": int(emb.steps) if solver == "lobpcg" else None,
         "matvec_mode": K.mode,
-        "solver": config.solver.method,
-        "resumed_from_restart": state.restarts if state is not None else None,
+        "solver": solver,
+        "resumed_from_restart": _position(state),
         "max_residual": float(np.max(emb.residuals)),
     }
+
+
+def _position(state) -> int | None:
+    if state is None:
+        return None
+    return state.rounds if isinstance(state, BlockState) else state.restarts
 
 
 def _folder(ctx: StageContext) -> Path:
     return ctx.workdir.stage_dir(ctx.name) / "checkpoint"
 
 
-def load_checkpoint(ctx: StageContext) -> LanczosState | None:
-    """The Lanczos state saved at the last restart, or None."""
+def load_checkpoint(ctx: StageContext, solver: str) -> LanczosState | BlockState | None:
+    """The state ``solver`` saved last (Lanczos restart or LOBPCG round), or None."""
     meta = read_json(_folder(ctx) / "state.json")
-    if not meta:
+    if not meta or meta.get("solver", "lanczos") != solver:
         return None
     group = store.open_group(_folder(ctx) / meta["arrays"], mode="r")
     arrays = {name: np.asarray(group[name][...]) for name in group.array_keys()}
+    if solver == "lobpcg":
+        return BlockState(block=arrays["block"], **meta["scalars"])
     return LanczosState.from_parts(arrays, meta["scalars"])
 
 
-def checkpoint_writer(ctx: StageContext):
-    """Callback saving the Lanczos state after a restart (at most every checkpoint_seconds).
+def checkpoint_writer(ctx: StageContext, solver: str):
+    """Callback saving the solver state (at most every checkpoint_seconds).
 
     The arrays go to a new zarr group first; the JSON pointer to it is renamed into place
     after, so a crash leaves either the old or the new checkpoint, never half of one.
@@ -102,26 +124,30 @@ def checkpoint_writer(ctx: StageContext):
     every = ctx.config.run.checkpoint_seconds
     last = [time.monotonic()]
 
-    def save(state: LanczosState) -> None:
+    def save(state: LanczosState | BlockState) -> None:
         now = time.monotonic()
         if now - last[0] < every and not STOP.requested:
             return
         last[0] = now
         folder = _folder(ctx)
         folder.mkdir(parents=True, exist_ok=True)
-        name = f"restart-{state.restarts:06d}.zarr"
+        blockwise = isinstance(state, BlockState)
+        position = state.rounds if blockwise else state.restarts
+        name = f"restart-{position:06d}.zarr"
         group = store.open_group(folder / name, mode="w")
-        for key, values in state.arrays().items():
+        arrays = {"block": state.block} if blockwise else state.arrays()
+        for key, values in arrays.items():
             values = np.asarray(values)
             arr = store.create_array(group, key, shape=values.shape,
                                      chunk_rows=ctx.config.run.chunk_rows, dtype=values.dtype)
             arr[...] = values
-        write_json_atomic(folder / "state.json", {"arrays": name, "scalars": state.scalars()})
+        write_json_atomic(folder / "state.json",
+                          {"arrays": name, "solver": solver, "scalars": state.scalars()})
         for old in folder.glob("restart-*.zarr"):
             if old.name != name:
                 shutil.rmtree(old, ignore_errors=True)
         fault_point(ctx.name, ctx.workdir.stage_dir(ctx.name))
-        ctx.check_stop(f"Lanczos restart {state.restarts}")
+        ctx.check_stop(f"LOBPCG round {position}" if blockwise else f"Lanczos restart {position}")
 
     return save
 
@@ -132,7 +158,7 @@ def clear_checkpoint(ctx: StageContext) -> None:
 
 STAGE = Stage(
     name="solve",
-    version=2,
+    version=3,
     config_keys=(
         "embedding.components",
         "solver.method",
