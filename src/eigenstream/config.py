@@ -199,13 +199,13 @@ class EmbeddingConfig:
 class SolverConfig:
     """Eigensolver accuracy and effort (section ``[solver]``)."""
 
-    method: str = "lanczos"
+    method: str = "auto"
     tol: float = 1e-8
     max_matvecs: int = 200_000
     check_multiplicity: bool = True
 
     def __post_init__(self) -> None:
-        _choice("solver", "method", self.method, ("lanczos", "arpack"))
+        _choice("solver", "method", self.method, ("auto", "lanczos", "lobpcg", "arpack"))
         object.__setattr__(self, "tol", _number("solver", "tol", self.tol, 0.0, 0.1))
         _int("solver", "max_matvecs", self.max_matvecs, 10)
         if not isinstance(self.check_multiplicity, bool):
