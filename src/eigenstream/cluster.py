@@ -160,8 +160,9 @@ def make_client(cfg: ClusterConfig, memory_limit: str | None = None) -> Iterator
 
     Numba and BLAS threads in each worker are capped to the worker's threads, because dask
     caps BLAS but not numba and oversubscribed cores slow the neighbour search. With a
-    ``memory_limit`` ("2GiB") each local worker gets an equal share of it (job-queue
-    workers get ``[cluster] memory`` per job instead). For ``slurm``/``pbs`` the cluster is
+    ``memory_limit`` ("2GiB") each local worker process gets an equal share of it as its dask
+    memory limit (thread workers get none; job-queue workers get ``[cluster] memory`` per job
+    instead). For ``slurm``/``pbs`` the cluster is
     kept at ``[cluster] jobs`` jobs (retired jobs are replaced) and the run starts when the
     first worker has connected.
     """
@@ -251,7 +252,10 @@ def _local_client(cfg: ClusterConfig, memory_limit: str | None) -> Iterator[Clie
     network: dict[str, Any] = {"host": "127.0.0.1"} if cfg.processes else {}
     workers = local_worker_count(cfg)
     limit = memory_bytes(memory_limit) if memory_limit else None
-    if limit is not None:
+    if limit is not None and cfg.processes:
+        # Not for thread workers: they share this process, so dask would weigh the driver's
+        # memory against each worker's share and pause them for good (measured); there the
+        # share only sizes the row blocks (budget.py).
         network["memory_limit"] = max(limit // workers, 256 << 20)
     cluster = LocalCluster(
         n_workers=workers,

@@ -203,9 +203,17 @@ class SolverConfig:
     tol: float = 1e-8
     max_matvecs: int = 200_000
     check_multiplicity: bool = True
+    matvec: str = "auto"
 
     def __post_init__(self) -> None:
         _choice("solver", "method", self.method, ("auto", "lanczos", "lobpcg", "arpack"))
+        _choice("solver", "matvec", self.matvec, ("auto", "driver", "workers"))
+        if self.method == "lobpcg" and self.matvec == "workers":
+            raise ConfigError(
+                '`[solver] method = "lobpcg"` needs the graph in the driver (its multigrid '
+                'preconditioner); got `matvec = "workers"`. Hint: use method = "lanczos" or '
+                'matvec = "driver".'
+            )
         object.__setattr__(self, "tol", _number("solver", "tol", self.tol, 0.0, 0.1))
         _int("solver", "max_matvecs", self.max_matvecs, 10)
         if not isinstance(self.check_multiplicity, bool):
@@ -218,7 +226,7 @@ class RunConfig:
 
     workdir: str = "eigenstream-work"
     seed: int = 0
-    chunk_rows: int = 50_000
+    chunk_rows: int | str = "auto"
     on_bad_rows: str = "refuse"
     dtype: str = "float32"
     checkpoint_seconds: float = 60.0
@@ -229,7 +237,12 @@ class RunConfig:
         if not isinstance(self.workdir, str) or not self.workdir:
             raise _fail("run", "workdir", "a non-empty path", self.workdir)
         _int("run", "seed", self.seed, 0, 2**32 - 1)
-        _int("run", "chunk_rows", self.chunk_rows, 1)
+        if self.chunk_rows != "auto" and (
+            isinstance(self.chunk_rows, bool) or not isinstance(self.chunk_rows, int)
+            or self.chunk_rows < 1
+        ):
+            # "auto": derived from the memory budget when the run starts (budget.py)
+            raise _fail("run", "chunk_rows", 'an integer >= 1 or "auto"', self.chunk_rows)
         _choice("run", "on_bad_rows", self.on_bad_rows, ("refuse", "drop"))
         _choice("run", "dtype", self.dtype, ("float32", "float64"))
         memory_bytes(self.memory_limit)

@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.budget import resolve_chunk_rows
 from eigenstream.config import Config
 from eigenstream.core.moments import standardizer
 from eigenstream.core.tuning import recommend
@@ -33,7 +34,7 @@ def sample_rows(config: Config, size: int, seed: int) -> tuple[np.ndarray, int]:
         n = src.n_rows
         pick = np.sort(np.random.default_rng(seed).choice(n, size=min(size, n), replace=False))
         parts = []
-        for block in src.blocks(max(1, config.run.chunk_rows)):
+        for block in src.blocks(resolve_chunk_rows(config, n, len(src.columns))):
             lo = np.searchsorted(pick, block.start)
             hi = np.searchsorted(pick, block.start + len(block.values))
             if hi > lo:

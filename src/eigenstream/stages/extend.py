@@ -8,6 +8,7 @@ owns. Output: ``extend/data.zarr/coordinates`` (n, components), float64, in inpu
 
 from __future__ import annotations
 
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -109,13 +110,13 @@ def _extend_from_landmarks(ctx, everything, ranges, finished) -> None:
     graph = graph_rows_spec(ctx.workdir, ctx.config)
     settings = settings_of(ctx.config)
     out_path = str(ctx.workdir.stage_store(ctx.name))
-    futures = {
-        ctx.client.submit(_landmark_block, str(ctx.workdir.path), everything, graph, settings,
-                          out_path, s, e, pure=False): number
+    tasks = [
+        (number, partial(ctx.client.submit, _landmark_block, str(ctx.workdir.path), everything,
+                         graph, settings, out_path, s, e, pure=False))
         for number, (s, e) in enumerate(ranges)
         if number not in finished
-    }
-    ctx.collect_blocks(futures, ranges, finished, desc="extend (Nystrom)")
+    ]
+    ctx.collect_blocks(tasks, ranges, finished, desc="extend (Nystrom)")
 
 
 STAGE = Stage(

@@ -30,11 +30,15 @@ def _extra_columns(config: Config) -> list[str]:
     return [config.map.color_column] if config.map.color_column else []
 
 
-def preflight(config: Config) -> None:
-    """Check, before any work starts, that the input opens and fits the settings."""
+def preflight(config: Config) -> tuple[int, int]:
+    """Check, before any work starts, that the input opens and fits the settings.
+
+    Returns the input's numbers of rows and columns (they size the row blocks).
+    """
     with open_source(config.input, extra_columns=_extra_columns(config)) as src:
         check_row_count(config, src.n_rows, str(src.path))
         budget.check(config, src.n_rows, len(src.columns))
+        return src.n_rows, len(src.columns)
 
 
 def check_row_count(config: Config, n_rows: int, where: str) -> None:
