@@ -10,6 +10,7 @@ socket is on loopback, every wait is bounded, and every process started is stopp
 from __future__ import annotations
 
 import dataclasses
+import json
 import logging
 import os
 import signal
@@ -137,10 +138,13 @@ def running_scheduler(tmp_path_factory):
     folder = tmp_path_factory.mktemp("scheduler")
     scheduler_file = folder / "scheduler.json"
     quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL}
+    # The eigensolver's products run as tasks too; keep enough of the scheduler's transition
+    # log that the neighbour tasks counted by the tests are still in it afterwards.
+    long_log = {**os.environ, "DASK_DISTRIBUTED__ADMIN__LOW_LEVEL_LOG_LENGTH": "10000000"}
     procs = [subprocess.Popen(
         [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
          "--port", "0", "--dashboard-address", "127.0.0.1:0",
-         "--scheduler-file", str(scheduler_file)], **quiet,
+         "--scheduler-file", str(scheduler_file)], env=long_log, **quiet,
     )]
     try:
         procs.append(subprocess.Popen(
@@ -225,6 +229,50 @@ def test_worker_killed_during_neighbour_stage(data, reference, running_scheduler
     diff = np.abs(stored_coordinates(workdir) - reference).max()
     assert diff <= 1e-6, diff
     assert "dask dashboard: http://127.0.0.1:" in log.read_text()
+
+
+def test_worker_killed_during_eigensolve(data, reference, running_scheduler, tmp_path):
+    # With a running scheduler the eigensolver's products run on the workers over row blocks
+    # they keep ("workers (persisted)"); killing the worker holding most blocks mid-solve must
+    # not change the map: dask reloads the lost blocks from zarr (engineering notes 2.3).
+    address = running_scheduler.address
+    workdir = tmp_path / "work"
+    cfg = tmp_path / "cfg.toml"
+    cfg.write_text(
+        f'[input]\npath = "{data}"\n[graph]\nneighbors = 10\nmethod = "exact"\n'
+        f'[kernel]\nbandwidth_neighbor = 5\n[embedding]\ncomponents = 2\n'
+        f'[run]\nworkdir = "{workdir}"\nchunk_rows = {CHUNK}\n'
+        f'[cluster]\nkind = "address"\naddress = "{address}"\n'
+    )
+    log = tmp_path / "driver.log"
+    with Client(address, timeout="20s") as watcher, log.open("w") as out:
+        pids = watcher.run(os.getpid)
+        driver = subprocess.Popen([sys.executable, "-m", "eigenstream", "run", str(cfg)],
+                                  stdout=out, stderr=subprocess.STDOUT)
+        try:
+            deadline = time.monotonic() + 120
+            while True:  # wait until the graph blocks sit on the workers and products run
+                assert driver.poll() is None, log.read_text()[-2000:]
+                assert time.monotonic() < deadline, "eigensolve not seen within 120 s"
+                held = {w: [k for k in keys if str(k).startswith("graph-block-")]
+                        for w, keys in watcher.has_what().items()}
+                victim = max(held, key=lambda w: len(held[w]))
+                if held[victim]:
+                    break
+                time.sleep(0.01)
+            time.sleep(0.5)  # some products done with the blocks in place
+            assert driver.poll() is None, "the solve ended before the kill"
+            os.kill(pids[victim], signal.SIGKILL)
+            code = driver.wait(timeout=300)
+        finally:
+            if driver.poll() is None:
+                stop([driver])
+        watcher.wait_for_workers(2, timeout=30)
+    assert code == 0, log.read_text()[-2000:]
+    summary = json.loads((workdir / "solve" / "stage.json").read_text())["summary"]
+    assert summary["matvec_mode"] == "workers (persisted)"
+    diff = np.abs(stored_coordinates(workdir) - reference).max()
+    assert diff <= 1e-6, diff
 
 
 def test_scheduler_without_workers_is_a_clear_error():

@@ -76,9 +76,14 @@ class BlockResult:
 
 def normalized_laplacian(K: sp.spmatrix, scale: np.ndarray) -> sp.csr_matrix:
     """L = I - diag(scale) K diag(scale) as CSR float64."""
-    s = sp.diags(np.asarray(scale, dtype=np.float64))
-    A = (s @ sp.csr_matrix(K, dtype=np.float64) @ s).tocsr()
-    return (sp.identity(A.shape[0], format="csr") - A).tocsr()
+    K = sp.csr_matrix(K)
+    scale = np.asarray(scale, dtype=np.float64)
+    rows = np.repeat(np.arange(K.shape[0]), np.diff(K.indptr))
+    # Scaled in place of two sparse products, which would each copy the matrix.
+    minus_A = sp.csr_matrix((-(scale[rows] * K.data * scale[K.indices]), K.indices, K.indptr),
+                            shape=K.shape)
+    del rows
+    return (minus_A + sp.identity(K.shape[0], format="csr")).tocsr()
 
 
 def amg_preconditioner(L: sp.csr_matrix, trivial: np.ndarray) -> LinearOperator:

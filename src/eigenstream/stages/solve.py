@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream import budget
 from eigenstream.checkpoint import STOP
 from eigenstream.core.amg_lobpcg import BlockState
 from eigenstream.core.lanczos import LanczosState
@@ -25,19 +26,52 @@ from eigenstream.core.spectral import choose_solver, solve_embedding
 from eigenstream.io import store
 from eigenstream.io.graphstore import StoredCSR
 from eigenstream.pipeline import Stage, StageContext, fault_point
+from eigenstream.stages.graph_on_workers import WorkerGraph
 from eigenstream.workdir import read_json, write_json_atomic
 
 log = logging.getLogger(__name__)
+
+# Driver memory of the LOBPCG path per stored non-zero: K (16 B), the Laplacian, its shifted
+# copy and the multigrid hierarchy (12 B each plus transients); an upper estimate.
+LOBPCG_BYTES_PER_NONZERO = 64
 
 
 def _run(ctx: StageContext) -> dict[str, Any]:
     config = ctx.config
     graph_path = ctx.workdir.stage_store("affinity")
     aff = ctx.input_store("affinity")
-    K = StoredCSR(graph_path)
+    graph_bytes = budget.driver_graph_bytes(config)
     scale = np.asarray(aff["scale"][...])
     degrees = np.asarray(aff["degrees"][...])
-    solver = choose_solver(config.solver.method, K.n, matrix_in_memory=K.in_memory)
+    if products_on_workers(config):
+        K = WorkerGraph(ctx.client, graph_path, worker_memory=budget.worker_share(config).bytes)
+        fits = False
+    else:
+        K = StoredCSR(graph_path, memory_budget=graph_bytes)
+        fits = K.in_memory and K.nnz * LOBPCG_BYTES_PER_NONZERO <= graph_bytes
+    try:
+        return _solve(ctx, K, scale, degrees,
+                      choose_solver(config.solver.method, K.n, matrix_in_memory=fits))
+    finally:
+        if isinstance(K, WorkerGraph):
+            K.close()
+
+
+def products_on_workers(config) -> bool:
+    """Whether the eigensolver's products run on the dask workers.
+
+    "auto": on the workers when they are not on this machine (a running scheduler or a batch
+    queue), so the driver holds only vectors; with a local cluster the driver's own memory
+    is as close to the data and avoids a task round trip per product.
+    """
+    where = config.solver.matvec
+    if where == "auto":
+        return config.cluster.kind != "local" and config.solver.method != "lobpcg"
+    return where == "workers"
+
+
+def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
+    config = ctx.config
     state = load_checkpoint(ctx, solver) if ctx.resuming else None
     if state is not None:
         log.info("solve: continuing from the checkpoint of %s (%d products so far)",
