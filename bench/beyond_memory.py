@@ -2,6 +2,7 @@
 
 Usage: .venv/bin/python bench/beyond_memory.py [--rows 16000000] [--columns 64]
                                                [--limit 1GiB] [--count 5000]
+                                               [--workers 1] [--table PATH]
 
 Writes a float32 table (16M x 64 = 4 GiB by default) with bench/manifold_data.py, then runs
 eigenstream in landmark mode with ``[run] memory_limit`` set, in a fresh process, measuring wall
@@ -28,10 +29,14 @@ def main() -> None:
     parser.add_argument("--limit", default="1GiB")
     parser.add_argument("--count", type=int, default=5000)
     parser.add_argument("--workers", type=int, default=1)
+    parser.add_argument("--table", type=Path, default=None,
+                        help="zarr table to reuse (written there first if missing)")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent) as tmp:
         tmp = Path(tmp)
-        data = write_table(tmp / "big.zarr", args.rows, columns=args.columns)
+        data = args.table or tmp / "big.zarr"
+        if not data.exists():
+            write_table(data, args.rows, columns=args.columns)
         table_bytes = args.rows * args.columns * 4
         cfg = tmp / "cfg.toml"
         cfg.write_text(
