@@ -117,6 +117,9 @@ def _cmd_status(args) -> int:
     for name, state in info["stages"].items():
         seconds = info["timings"].get(name)
         extra = f"  {seconds:.1f} s" if isinstance(seconds, int | float) else ""
+        if name == "neighbors" and "compile_seconds" in info.get("neighbors", {}):
+            extra += "  (compile {compile_seconds:.1f} s, search {search_seconds:.1f} s)".format(
+                **info["neighbors"])
         if name in info.get("blocks", {}):
             b = info["blocks"][name]
             extra += f"  ({b['done']} of {b['total'] if b['total'] is not None else '?'} blocks)"

@@ -8,6 +8,7 @@ The run record (``run.json``) says ``complete`` only after every stage is done.
 
 from __future__ import annotations
 
+import dataclasses
 import errno
 import hashlib
 import json
@@ -98,22 +99,43 @@ class StageContext:
         )
         fault_point(self.name, self.workdir.stage_dir(self.name))
 
-    def collect_blocks(self, futures: dict, ranges, finished, *, desc: str | None = None) -> None:
-        """Wait for row-block tasks (future -> block number) returning (start, stop, crc).
+    def collect_blocks(self, tasks, ranges, finished, *, desc: str | None = None) -> None:
+        """Run row-block tasks returning (start, stop, crc) and record each as it finishes.
 
-        Each block is marked as soon as its task finishes and its result released (so a lost
-        worker does not make dask recompute it); progress counts rows, finished ones included.
+        ``tasks`` lists ``(block number, submit)``, ``submit()`` starting the block's task and
+        returning its future; at most :func:`eigenstream.budget.blocks_in_flight` of them are
+        outstanding at once, the next submitted as one finishes (a dict future -> block
+        number of tasks already submitted is taken as it is). Each block is marked as soon as
+        its task finishes and its result released (so a lost worker does not make dask
+        recompute it); progress counts rows, finished ones included.
         """
         from distributed import as_completed
 
+        from eigenstream.budget import blocks_in_flight
+
+        waiting = [] if isinstance(tasks, dict) else list(tasks)[::-1]
+        numbers = dict(tasks) if isinstance(tasks, dict) else {}
+        pending = as_completed(list(numbers))
+
+        def submit_more() -> None:
+            # the cluster's threads are asked again each time: job-queue workers come and go
+            limit = blocks_in_flight(sum(self.client.nthreads().values())) if waiting else 0
+            while waiting and len(numbers) < limit:
+                number, submit = waiting.pop()
+                future = submit()
+                numbers[future] = number
+                pending.add(future)
+
         with self.progress(ranges[-1][1] if ranges else 0, "rows", desc=desc) as bar:
             bar.update(sum(e - s for i, (s, e) in enumerate(ranges) if i in finished))
-            for fut in as_completed(list(futures)):
+            submit_more()
+            for fut in pending:
                 s, e, crc = fut.result()
-                self.mark_block(futures.pop(fut), s, e, crc)
+                self.mark_block(numbers.pop(fut), s, e, crc)
                 fut.release()
                 bar.update(e - s)
                 self.check_stop(f"rows {s + 1}-{e}")
+                submit_more()
 
     def set_blocks_total(self, total: int) -> None:
         """Tell ``status`` how many blocks this stage has."""
@@ -341,7 +363,7 @@ def run_pipeline(
     from eigenstream.stages.read import preflight
 
     config = coerce_config(config, overrides)
-    preflight(config)
+    n_rows, n_columns = preflight(config)
     log.info("input: %s; work directory: %s", config.input.path, config.run.workdir)
     workdir = Workdir(config.run.workdir)
     workdir.create()
@@ -350,8 +372,23 @@ def run_pipeline(
             _discard(workdir)
         else:
             _refuse_other_input(workdir, config)
+        config = _resolve_chunk_rows(workdir, config, n_rows, n_columns)
         _execute(workdir, config, show_progress, verify_all)
     return workdir.path
+
+
+def _resolve_chunk_rows(workdir: Workdir, config: Config, n_rows: int, n_columns: int) -> Config:
+    """``config`` with ``[run] chunk_rows`` as the number every stage uses (and fingerprints).
+
+    ``"auto"`` keeps the block size of the run already in the work directory when it still
+    fits the budget, so a resumed run reuses its finished stages (:mod:`eigenstream.budget`).
+    """
+    from eigenstream.budget import resolve_chunk_rows
+
+    earlier = ((workdir.read_run() or {}).get("config") or {}).get("run", {}).get("chunk_rows")
+    earlier = earlier if isinstance(earlier, int) and not isinstance(earlier, bool) else None
+    rows = resolve_chunk_rows(config, n_rows, n_columns, earlier=earlier)
+    return dataclasses.replace(config, run=dataclasses.replace(config.run, chunk_rows=rows))
 
 
 def _discard(workdir: Workdir) -> None:
@@ -379,12 +416,14 @@ def _refuse_other_input(workdir: Workdir, config: Config) -> None:
 
 def _execute(workdir: Workdir, config: Config, show_progress: bool, verify_all: bool) -> None:
     from eigenstream.cluster import make_client
+    from eigenstream.warmup import compile_ahead
 
     with _run_record(workdir, config) as record:
         timings: dict[str, float] = {}
         fingerprints: dict[str, str] = {}
         summaries: dict[str, dict[str, Any]] = {}
-        with make_client(config.cluster, config.run.memory_limit) as client:
+        with (make_client(config.cluster, config.run.memory_limit) as client,
+              compile_ahead(client, workdir, config)):
             record["cluster"] = {"kind": config.cluster.kind, "dashboard": client.dashboard_link}
             workdir.write_run(record)
             for stage in stages():
@@ -508,6 +547,9 @@ def status(workdir: str | Path) -> dict[str, Any]:
     aff_state = wd.stage_state("affinity")
     if aff_state and aff_state.get("state") == "done":
         out["graph"] = {k: aff_state["summary"].get(k) for k in ("nnz", "connected_components")}
+    nb_state = wd.stage_state("neighbors")
+    if nb_state and nb_state.get("state") == "done":
+        out["neighbors"] = {k: v for k, v in nb_state["summary"].items() if k.endswith("seconds")}
     return out
 
 

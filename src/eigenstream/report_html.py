@@ -400,8 +400,12 @@ def _timings_table(info: Mapping[str, Any]) -> str:
         if _is_number(t) and math.isfinite(t) and longest > 0:
             width = max(0.5, 100.0 * t / longest)
         bar = f'<span class="bar" style="width:{width:.1f}%"></span>' if width else ""
+        nb = info.get("neighbors") if name == "neighbors" else None
+        label = _esc(name) + (f" (compile {_seconds(nb.get('compile_seconds'))}, search "
+                              f"{_seconds(nb.get('search_seconds'))})"
+                              if isinstance(nb, Mapping) and "compile_seconds" in nb else "")
         rows.append(
-            f"<tr><td>{_esc(name)}</td><td>{_fmt(states.get(name))}</td>"
+            f"<tr><td>{label}</td><td>{_fmt(states.get(name))}</td>"
             f'<td class="num">{_seconds(t)}</td><td style="width:40%">{bar}</td></tr>'
         )
     total = _seconds(math.fsum(numbers)) if numbers else _NOT_COMPUTED

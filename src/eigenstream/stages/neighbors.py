@@ -4,15 +4,19 @@ Outputs ``indices`` (n, k) int64 and ``distances`` (n, k) float64, each row sort
 the row itself excluded. Small tables (``[graph] exact_max_rows``) use exact search split into
 row blocks, one dask task per block (each task writes whole chunks it owns); larger ones use
 pynndescent's approximate search in one worker task. The rows are the graph rows of
-:mod:`eigenstream.stages.features` (all rows or the landmarks).
+:mod:`eigenstream.stages.features` (all rows or the landmarks). For the approximate search the
+summary keeps pynndescent's compile time apart from the search time (:mod:`eigenstream.warmup`).
 """
 
 from __future__ import annotations
 
+import logging
+import time
 from typing import Any
 
 import numpy as np
 
+from eigenstream import warmup
 from eigenstream.checkpoint import values_checksum
 from eigenstream.core.neighbors import approximate_knn, exact_knn
 from eigenstream.core.shards import (
@@ -24,6 +28,8 @@ from eigenstream.core.shards import (
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
 from eigenstream.stages.features import FeatureSpec, graph_rows_spec
+
+log = logging.getLogger(__name__)
 
 # Exact search holds a (block, n) distance matrix per task; this caps it near 128 MiB.
 _EXACT_BLOCK_ELEMENTS = 1 << 24
@@ -40,18 +46,24 @@ def _exact_block(spec: FeatureSpec, out_path, start, stop, k):
     return start, stop, values_checksum([idx, dist])
 
 
-def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> int:
+def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int, float]:
+    """Search every row; returns (rows, seconds this task spent compiling pynndescent)."""
+    compiled = warmup.warm_worker(spec.metric, n_jobs=n_jobs)
     data = spec.load()
     idx, dist = approximate_knn(data, k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
     out = store.open_group(out_path, mode="r+")
     out["indices"][...] = idx
     out["distances"][...] = spec.distances_to_input_units(dist)
-    return data.shape[0]
+    return data.shape[0], compiled
 
 
 def _shard_candidates(spec: FeatureSpec, out_path, shard: int, a: int, b: int, k: int,
-                      seed: int, n_jobs: int, block: int) -> int:
-    """Build shard ``shard``'s index and write every row's k candidates in it."""
+                      seed: int, n_jobs: int, block: int) -> tuple[int, float]:
+    """Build shard ``shard``'s index and write every row's k candidates in it.
+
+    Returns the shard and the seconds this task spent compiling pynndescent.
+    """
+    compiled = warmup.warm_worker(spec.metric, query=True, n_jobs=n_jobs)
     index = build_shard_index(spec.load(a, b), k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
     out = store.open_group(out_path, mode="r+")
     cand_i, cand_d = out[f"shard{shard}/indices"], out[f"shard{shard}/distances"]
@@ -60,7 +72,7 @@ def _shard_candidates(spec: FeatureSpec, out_path, shard: int, a: int, b: int, k
         idx, dist = query_shard(index, spec.load(s, e), k, offset=a, row_ids=np.arange(s, e))
         cand_i[s:e] = idx
         cand_d[s:e] = dist
-    return shard
+    return shard, compiled
 
 
 def _merge_block(spec: FeatureSpec, out_path, shards: int, start: int, stop: int, k: int):
@@ -78,8 +90,11 @@ def _merge_block(spec: FeatureSpec, out_path, shards: int, start: int, stop: int
 
 
 def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k: int,
-             block: int, arrays) -> None:
-    """The sharded construction (core/shards.py): shard tasks, then merge tasks per block."""
+             block: int, arrays) -> float:
+    """The sharded construction (core/shards.py): shard tasks, then merge tasks per block.
+
+    Returns the longest time a shard task spent compiling pynndescent.
+    """
     from distributed import as_completed
 
     config = ctx.config
@@ -89,6 +104,7 @@ def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k
             ctx.array(out, f"shard{j}/{name}", shape=(n, k), chunk_rows=block, dtype=dtype)
     folder = ctx.workdir.stage_dir(ctx.name)
     pending = [j for j in range(len(ranges)) if not (folder / f"shard{j}.done").exists()]
+    compiled = 0.0
     with ctx.progress(len(ranges), "shards", desc="neighbors (shard indexes)") as bar:
         bar.update(len(ranges) - len(pending))
         futures = [
@@ -98,7 +114,9 @@ def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k
             for j in pending
         ]
         for fut in as_completed(futures):
-            (folder / f"shard{fut.result()}.done").write_text("{}")
+            shard, seconds = fut.result()
+            compiled = max(compiled, seconds)
+            (folder / f"shard{shard}.done").write_text("{}")
             bar.update(1)
             ctx.check_stop("a shard index")
     blocks = store.block_ranges(n, block)
@@ -109,6 +127,7 @@ def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k
         for i, (s, e) in enumerate(blocks) if i not in finished
     }
     ctx.collect_blocks(merges, blocks, finished, desc="neighbors (merge)")
+    return compiled
 
 
 def choose_method(config, n_rows: int) -> str:
@@ -135,7 +154,9 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     ]
     out_path = str(ctx.workdir.stage_store(ctx.name))
     client = ctx.client
+    timing: dict[str, float] = {}
     if method == "exact":
+        warmup.collect(ctx.workdir, cancel=True)
         ranges = store.block_ranges(n, block)
         ctx.set_blocks_total(len(ranges))
         finished = ctx.finished_blocks(arrays)
@@ -145,17 +166,42 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             if number not in finished
         }
         ctx.collect_blocks(futures, ranges, finished)
-    elif config.graph.shards > 1:
-        _sharded(ctx, spec, out, out_path, n, k, block, arrays)
     else:
-        n_jobs = config.cluster.threads_per_worker
-        fut = client.submit(_approximate_all, spec, out_path, k, config.run.seed, n_jobs,
-                            pure=False)
-        with ctx.progress(n, "rows") as bar:
-            bar.update(fut.result())
+        ahead, waited, warm = warmup.collect(ctx.workdir)
+        t0 = time.perf_counter()
+        if config.graph.shards > 1:
+            in_task = _sharded(ctx, spec, out, out_path, n, k, block, arrays)
+        else:
+            n_jobs = config.cluster.threads_per_worker
+            # to a worker that has compiled already (any other when it has left)
+            fut = client.submit(_approximate_all, spec, out_path, k, config.run.seed, n_jobs,
+                                pure=False, workers=warm or None,
+                                allow_other_workers=bool(warm))
+            with ctx.progress(n, "rows") as bar:
+                rows, in_task = fut.result()
+                bar.update(rows)
+        timing = _timing(ahead, waited, in_task, time.perf_counter() - t0)
     if method == "approximate" and config.graph.shards > 1:
         method = f"approximate, {config.graph.shards} shards"
-    return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": spec.unit}
+    return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": spec.unit,
+            **timing}
+
+
+def _timing(ahead: float | None, waited: float, in_task: float, elapsed: float) -> dict:
+    """Compile and search seconds of an approximate search, logged and for the summary.
+
+    ``compile_seconds`` is the longest any worker spent compiling (ahead of the stage or inside
+    its task); ``compile_wait_seconds`` the part of it the stage waited for (not overlapped
+    with the earlier stages); ``search_seconds`` the rest of the stage.
+    """
+    timing = {
+        "compile_seconds": round(max(ahead or 0.0, in_task), 3),
+        "compile_wait_seconds": round(waited, 3),
+        "search_seconds": round(max(elapsed - in_task, 0.0), 3),
+    }
+    log.info("neighbors: compile %.1f s (waited %.1f s of it), search %.1f s",
+             timing["compile_seconds"], timing["compile_wait_seconds"], timing["search_seconds"])
+    return timing
 
 
 STAGE = Stage(
