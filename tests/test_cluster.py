@@ -65,6 +65,18 @@ def stored_coordinates(workdir: Path) -> np.ndarray:
     return zarr.open_group(str(workdir / "extend" / "data.zarr"), mode="r")["coordinates"][...]
 
 
+def address_config_file(folder: Path, data: Path, workdir: Path, address: str) -> Path:
+    """The TOML of :func:`run_config` for a running scheduler, for runs in a subprocess."""
+    cfg = folder / "cfg.toml"
+    cfg.write_text(
+        f'[input]\npath = "{data}"\n[graph]\nneighbors = 10\nmethod = "exact"\n'
+        f'[kernel]\nbandwidth_neighbor = 5\n[embedding]\ncomponents = 2\n'
+        f'[run]\nworkdir = "{workdir}"\nchunk_rows = {CHUNK}\n'
+        f'[cluster]\nkind = "address"\naddress = "{address}"\n'
+    )
+    return cfg
+
+
 def stop(procs: list[subprocess.Popen]) -> None:
     """Stop processes we started, and their children, by PID (SIGTERM, then SIGKILL)."""
     family = []
@@ -184,13 +196,7 @@ def test_address_cluster_run_equals_local_run(data, reference, running_scheduler
 def test_worker_killed_during_neighbour_stage(data, reference, running_scheduler, tmp_path):
     address = running_scheduler.address
     workdir = tmp_path / "work"
-    cfg = tmp_path / "cfg.toml"
-    cfg.write_text(
-        f'[input]\npath = "{data}"\n[graph]\nneighbors = 10\nmethod = "exact"\n'
-        f'[kernel]\nbandwidth_neighbor = 5\n[embedding]\ncomponents = 2\n'
-        f'[run]\nworkdir = "{workdir}"\nchunk_rows = {CHUNK}\n'
-        f'[cluster]\nkind = "address"\naddress = "{address}"\n'
-    )
+    cfg = address_config_file(tmp_path, data, workdir, address)
     markers = workdir / "neighbors" / "markers"
     log = tmp_path / "driver.log"
     with Client(address, timeout="20s") as watcher, log.open("w") as out:
@@ -237,13 +243,7 @@ def test_worker_killed_during_eigensolve(data, reference, running_scheduler, tmp
     # not change the map: dask reloads the lost blocks from zarr (engineering notes 2.3).
     address = running_scheduler.address
     workdir = tmp_path / "work"
-    cfg = tmp_path / "cfg.toml"
-    cfg.write_text(
-        f'[input]\npath = "{data}"\n[graph]\nneighbors = 10\nmethod = "exact"\n'
-        f'[kernel]\nbandwidth_neighbor = 5\n[embedding]\ncomponents = 2\n'
-        f'[run]\nworkdir = "{workdir}"\nchunk_rows = {CHUNK}\n'
-        f'[cluster]\nkind = "address"\naddress = "{address}"\n'
-    )
+    cfg = address_config_file(tmp_path, data, workdir, address)
     log = tmp_path / "driver.log"
     with Client(address, timeout="20s") as watcher, log.open("w") as out:
         pids = watcher.run(os.getpid)
