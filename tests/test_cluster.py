@@ -33,6 +33,7 @@ import eigenstream
 from eigenstream.cluster import jobqueue_cluster, make_client, worker_lifetime
 from eigenstream.config import ClusterConfig, load_config
 from eigenstream.errors import ConfigError, EigenstreamError
+from eigenstream.testing.dask_processes import start_scheduler, start_workers
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 N_ROWS = 3000
@@ -149,23 +150,9 @@ def running_scheduler(tmp_path_factory):
     """`dask scheduler` + `dask worker --nworkers 2` on loopback (engineering notes 2.4)."""
     folder = tmp_path_factory.mktemp("scheduler")
     scheduler_file = folder / "scheduler.json"
-    quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL}
-    # The eigensolver's products run as tasks too; keep enough of the scheduler's transition
-    # log that the neighbour tasks counted by the tests are still in it afterwards.
-    long_log = {**os.environ, "DASK_DISTRIBUTED__ADMIN__LOW_LEVEL_LOG_LENGTH": "10000000"}
-    procs = [subprocess.Popen(
-        [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
-         "--port", "0", "--dashboard-address", "127.0.0.1:0",
-         "--scheduler-file", str(scheduler_file)], env=long_log, **quiet,
-    )]
+    procs = [start_scheduler(scheduler_file)]
     try:
-        procs.append(subprocess.Popen(
-            [sys.executable, "-m", "distributed.cli.dask_worker",
-             "--scheduler-file", str(scheduler_file), "--host", "127.0.0.1",
-             "--nworkers", "2", "--nthreads", "1", "--memory-limit", "1GiB",
-             "--local-directory", str(folder / "workers"),
-             "--dashboard-address", "127.0.0.1:0"], **quiet,
-        ))
+        procs.append(start_workers(scheduler_file, folder / "workers", "--nworkers", "2"))
         with Client(scheduler_file=str(scheduler_file), timeout="30s") as client:
             client.wait_for_workers(2, timeout=60)
             address = client.scheduler.address

@@ -12,7 +12,6 @@ import logging
 import os
 import signal
 import subprocess
-import sys
 import threading
 import time
 from collections import Counter
@@ -32,6 +31,7 @@ from eigenstream.stages.graph_on_workers import (
     WorkerGraph,
     balanced_row_blocks,
 )
+from eigenstream.testing.dask_processes import start_scheduler, start_workers
 
 pytestmark = pytest.mark.cluster
 
@@ -102,24 +102,11 @@ def local_client():
 def nanny_free_workers(tmp_path):
     """`dask scheduler` and two single-thread `dask worker --no-nanny` processes on loopback."""
     scheduler_file = tmp_path / "scheduler.json"
-    quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL}
-    # The scheduler's transition log (1000 entries by default) must outlast the whole solve
-    # for the recomputation count below.
-    env = {**os.environ, "DASK_DISTRIBUTED__ADMIN__LOW_LEVEL_LOG_LENGTH": "1000000"}
-    procs = [subprocess.Popen(
-        [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
-         "--port", "0", "--dashboard-address", "127.0.0.1:0",
-         "--scheduler-file", str(scheduler_file)], env=env, **quiet,
-    )]
+    # The scheduler's transition log must outlast the whole solve for the recomputation count.
+    procs = [start_scheduler(scheduler_file)]
     try:
         for i in range(2):
-            procs.append(subprocess.Popen(
-                [sys.executable, "-m", "distributed.cli.dask_worker",
-                 "--scheduler-file", str(scheduler_file), "--host", "127.0.0.1",
-                 "--no-nanny", "--nthreads", "1", "--memory-limit", "1GiB",
-                 "--local-directory", str(tmp_path / f"worker{i}"),
-                 "--dashboard-address", "127.0.0.1:0"], **quiet,
-            ))
+            procs.append(start_workers(scheduler_file, tmp_path / f"worker{i}", "--no-nanny"))
         with Client(scheduler_file=str(scheduler_file), timeout="30s") as client:
             client.wait_for_workers(2, timeout=60)
         yield SimpleNamespace(scheduler_file=str(scheduler_file), procs=procs)
