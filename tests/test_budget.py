@@ -214,3 +214,33 @@ def test_blocks_in_flight_are_limited_and_every_block_is_collected(tmp_path):
     assert len(submitted) == len(ranges) - len(finished) > limit
     assert max(outstanding) < limit  # each submission found a free place
     assert workdir.done_blocks("extend") == set(range(len(ranges))) - finished  # all marked
+
+
+@pytest.mark.parametrize("reference_rows, dim", [(3000, 10), (8000, 120)])
+def test_placing_rows_stays_within_its_modelled_scratch(reference_rows, dim):
+    # Outside measure: Python's tracemalloc, which traces numpy's allocations. Placing a block
+    # against the landmarks must not need more than budget.support_search_bytes (plus the
+    # reference rows the caller already holds), else derived blocks could overrun the limit.
+    import tracemalloc
+
+    from eigenstream.core.extension import extend_rows
+    from eigenstream.core.neighbors import exact_knn
+
+    rng = np.random.default_rng(0)
+    basis = rng.normal(size=(3, dim))
+    train = rng.uniform(size=(reference_rows, 3)) @ basis + 0.01 * rng.normal(size=(reference_rows, dim))
+    rows = rng.uniform(size=(5000, 3)) @ basis + 0.01 * rng.normal(size=(5000, dim))
+    _, dist = exact_knn(train, 15)
+    state = dict(radius=dist[:, -1], sigma=dist[:, 6], q=np.ones(reference_rows),
+                 degrees=np.ones(reference_rows), psi=np.ones((reference_rows, 4)),
+                 eigenvalues=np.linspace(0.99, 0.9, 4), k=15, bandwidth="adaptive",
+                 bandwidth_neighbor=7, alpha=1.0, diffusion_time=1.0)
+    tracemalloc.start()
+    try:
+        base = tracemalloc.get_traced_memory()[0]
+        extend_rows(rows, train, **state)
+        peak = tracemalloc.get_traced_memory()[1] - base
+    finally:
+        tracemalloc.stop()
+    model = budget.support_search_bytes(reference_rows, dim, rows.shape[0])
+    assert 0.25 * model < peak <= model, (peak, model)

@@ -5,7 +5,13 @@ import pytest
 from sklearn.datasets import load_digits
 from sklearn.neighbors import NearestNeighbors
 
-from eigenstream.core.neighbors import approximate_knn, drop_self, exact_knn, knn_recall
+from eigenstream.core.neighbors import (
+    approximate_knn,
+    drop_self,
+    exact_knn,
+    kernel_support,
+    knn_recall,
+)
 
 
 def _with_duplicates(seed=0):
@@ -97,3 +103,48 @@ def test_approximate_knn_recall_on_digits(digits_graphs):
     # NN-descent: "typically > 90 % recall" (Dong, Charikar & Li, WWW 2011); 0.95 bar is
     # common practice for a 1797-row set.
     assert knn_recall(a_idx, e_idx) >= 0.95
+
+
+def _brute_support(train, query, k, radius, metric):
+    """Reference: scipy.spatial.distance.cdist over all pairs, then the rule written out."""
+    from scipy.spatial.distance import cdist
+
+    d = cdist(query, train, metric="sqeuclidean" if metric == "euclidean" else "cosine")
+    d = np.sqrt(d) if metric == "euclidean" else d
+    if metric == "cosine":  # a zero row has no direction: 1 - cos with cos := 0
+        zq = np.linalg.norm(query, axis=1) == 0
+        zx = np.linalg.norm(train, axis=1) == 0
+        d[zq] = 1.0
+        d[:, zx] = 1.0
+    want = []
+    for r in range(d.shape[0]):
+        order = np.lexsort((np.arange(d.shape[1]), d[r]))
+        nearest = order[d[r, order] > 0][:k]
+        within = set(np.flatnonzero(d[r] <= radius)) | set(np.flatnonzero(d[r] == 0))
+        want.append(set(nearest) | within)
+    return d, want
+
+
+@pytest.mark.parametrize("metric", ["euclidean", "cosine"])
+@pytest.mark.parametrize("n_train", [37, 203, 1000])  # below and above 8 groups of k + 8
+def test_kernel_support_holds_every_exact_edge(metric, n_train):
+    # Reference: all-pairs distances from scipy's cdist; the support must contain every
+    # row's k nearest at positive distance, every training row within its own radius and
+    # every copy, with distances equal to cdist's to 1e-12 (float32 only ranks).
+    rng = np.random.default_rng(n_train)
+    train = rng.normal(size=(n_train, 7)) * 30.0 + 100.0  # far from the origin: GEMM rounding
+    copies = np.repeat(train[9:10], 30, 0)
+    query = np.vstack([rng.normal(size=(150, 7)) * 30.0 + 100.0, train[:5], copies])
+    train[20:35] = train[9]  # 16 copies of row 9: more than k + 8, crowding the k nearest out
+    if metric == "cosine":
+        train[-1], query[3] = 0.0, 0.0
+    k = 6
+    radius = np.sort(_brute_support(train, train, 1, np.zeros(n_train), metric)[0], axis=1)[:, k]
+    idx, dist = kernel_support(train, query, k, radius, metric=metric)
+    d, want = _brute_support(train, query, k, radius, metric)
+    for r in range(query.shape[0]):
+        finite = np.isfinite(dist[r])
+        got = idx[r][finite]
+        assert want[r] <= set(got), r
+        np.testing.assert_allclose(dist[r][finite], d[r, got], rtol=0, atol=1e-12 * d.max())
+        assert np.all(np.diff(dist[r][finite]) >= 0)

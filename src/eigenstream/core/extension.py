@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from eigenstream.core.neighbors import exact_knn
+from eigenstream.core.neighbors import kernel_support, kernel_support_blocks
 from eigenstream.core.nystrom import nystrom_extend
 
 
@@ -31,41 +31,17 @@ def kernel_rows(rows, train, radius, k, *, metric="euclidean"):
     k : int
     metric : {"euclidean", "cosine"}
     """
-    idx, dist = _candidates(rows, train, radius, k, metric)
+    idx, dist = kernel_support(train, rows, k, radius, metric=metric)
+    return _linked(idx, dist, radius, k), idx
+
+
+def _linked(idx, dist, radius, k):
+    """Distances of a support (sorted rows) with the edges the union rule drops set to +inf."""
     positive_rank = np.cumsum(dist > 0, axis=1)
     forward = (dist > 0) & (positive_rank <= k)
     reverse = dist <= radius[idx]
     linked = forward | reverse | (dist == 0)
-    return np.where(linked, dist, np.inf), idx
-
-
-def _candidates(rows, train, radius, k, metric):
-    """Nearest training rows of each row, enough of them to hold every reverse edge.
-
-    A training row x_j can link to y only if d(y, x_j) <= r_k(x_j) <= max r_k, so candidates
-    are widened until the farthest one lies beyond max r_k (or all rows are candidates).
-    """
-    n = train.shape[0]
-    reach = float(np.max(radius))
-    count = min(n, 3 * k + 1)
-    idx, dist = exact_knn(train, count, metric=metric, query=rows)
-    short = np.flatnonzero(dist[:, -1] <= reach)
-    while short.size and count < n:
-        count = min(n, 4 * count)
-        more_idx, more_dist = exact_knn(train, count, metric=metric, query=rows[short])
-        width = more_idx.shape[1]
-        idx = _widen(idx, width, fill=0)
-        dist = _widen(dist, width, fill=np.inf)
-        idx[short], dist[short] = more_idx, more_dist
-        short = short[more_dist[:, -1] <= reach]
-    return idx, dist
-
-
-def _widen(a: np.ndarray, width: int, *, fill) -> np.ndarray:
-    if a.shape[1] >= width:
-        return a
-    pad = np.full((a.shape[0], width - a.shape[1]), fill, dtype=a.dtype)
-    return np.concatenate([a, pad], axis=1)
+    return np.where(linked, dist, np.inf)
 
 
 def new_bandwidths(distances, *, bandwidth, bandwidth_neighbor, sigma_train):
@@ -85,8 +61,13 @@ def extend_rows(rows, train, *, radius, sigma, q, degrees, psi, eigenvalues, k, 
     -------
     ndarray, shape (m, components)
     """
-    dist, idx = kernel_rows(rows, train, radius, k, metric=metric)
-    sigma_new = new_bandwidths(dist, bandwidth=bandwidth, bandwidth_neighbor=bandwidth_neighbor,
-                               sigma_train=sigma)
-    return nystrom_extend(dist, idx, sigma_new, sigma, q, degrees, psi, eigenvalues,
-                          alpha=alpha, diffusion_time=diffusion_time)
+    out = np.empty((np.shape(rows)[0], np.shape(psi)[1]))
+    for start, stop, idx, support in kernel_support_blocks(train, rows, k, radius,
+                                                           metric=metric):
+        dist = _linked(idx, support, radius, k)
+        sigma_new = new_bandwidths(dist, bandwidth=bandwidth,
+                                   bandwidth_neighbor=bandwidth_neighbor, sigma_train=sigma)
+        out[start:stop] = nystrom_extend(dist, idx, sigma_new, sigma, q, degrees, psi,
+                                         eigenvalues, alpha=alpha,
+                                         diffusion_time=diffusion_time, first_row=start)
+    return out

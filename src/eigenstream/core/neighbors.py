@@ -277,3 +277,219 @@ def knn_recall(approx_indices: np.ndarray, exact_indices: np.ndarray) -> float:
     e_keys = (e + span * np.arange(e.shape[0])[:, None]).ravel()
     found = np.isin(e_keys, a_keys).reshape(e.shape)
     return float(found.mean())
+
+
+# Bytes of scratch per query sub-block of a kernel-support search (float32 ranking matrix,
+# its partitioned copy, masks and the exact re-measure of the candidate pairs).
+_SUPPORT_BYTES = 64 * 2**20
+# Bytes per (query row, reference row) entry of that scratch: the float32 ranking matrix and
+# its partitioned copy (4 + 4) and two boolean masks (1 + 1), rounded up.
+SUPPORT_ENTRY_BYTES = 12
+# Candidate pairs re-measured by differences at a time.
+PAIR_BLOCK = 1 << 14
+
+
+def kernel_support(
+    data: np.ndarray,
+    query: np.ndarray,
+    k: int,
+    radius: np.ndarray,
+    *,
+    metric: str = "euclidean",
+) -> tuple[np.ndarray, np.ndarray]:
+    """Reference rows near each query row: its k + 8 nearest and all within their own radius.
+
+    For each query row y this returns, with exact distances, every reference row x_j that is
+    among the ``k + 8`` nearest to y or satisfies ``d(y, x_j) <= radius[j]``, and possibly a
+    few more. Rows are ranked in float32 (one GEMM against all reference rows); every
+    candidate within the float32 rounding bound of either test is re-measured by direct
+    differences in float64, so the k nearest and the radius test are exact.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, D)
+        Reference rows.
+    query : ndarray, shape (m, D)
+    k : int
+        Nearest rows wanted; 8 more are kept so that exact zero distances (copies) still
+        leave k at positive distance.
+    radius : ndarray, shape (n,)
+        Per reference row, the distance within which it joins a query row's support.
+    metric : {"euclidean", "cosine"}
+
+    Returns
+    -------
+    indices : ndarray of int64, shape (m, w)
+    distances : ndarray of float64, shape (m, w)
+        Each row sorted by ascending distance (ties to the smaller index); rows with fewer
+        than ``w`` entries are padded with index 0 at distance +inf. Rows where copies
+        crowd out the k positive nearest are searched against all reference rows.
+
+    See Also
+    --------
+    kernel_support_blocks : the same, one query sub-block at a time (bounded memory).
+    """
+    pieces = [(i, d) for _, _, i, d in kernel_support_blocks(data, query, k, radius,
+                                                             metric=metric)]
+    if not pieces:
+        return np.zeros((0, 1), dtype=np.int64), np.full((0, 1), np.inf)
+    return _stack_padded(pieces)
+
+
+def support_block_rows(reference_rows: int) -> int:
+    """Query rows per sub-block of :func:`kernel_support_blocks` for ``reference_rows`` rows."""
+    return int(max(1, min(4096, _SUPPORT_BYTES // (SUPPORT_ENTRY_BYTES * max(reference_rows, 1)))))
+
+
+def kernel_support_blocks(data, query, k, radius, *, metric="euclidean"):
+    """:func:`kernel_support` of consecutive query sub-blocks, as (start, stop, indices, distances).
+
+    Sub-blocks hold :func:`support_block_rows` rows, so the scratch stays near 64 MiB and
+    each padded result is only as wide as that sub-block needs.
+    """
+    _check_metric(metric)
+    feats, zero = _as_features(data, metric)
+    center = feats.mean(axis=0) if metric == "euclidean" else 0.0
+    feats = feats - center
+    qfeats, qzero = _as_features(query, metric)
+    qfeats = qfeats - center
+    n, m = feats.shape[0], qfeats.shape[0]
+    if not 1 <= k <= n:
+        raise ValueError(f"k must be in [1, {n}] for {n} reference rows; got {k}.")
+    radius = np.asarray(radius, dtype=np.float64)
+    if radius.shape != (n,):
+        raise ValueError(f"radius must have shape ({n},); got {radius.shape}.")
+    ref = _Reference(feats, zero, metric)
+    ranker = _Ranker(ref, ref._to_d2(radius))
+    block = support_block_rows(n)
+    for r0 in range(0, m, block):
+        sl = slice(r0, min(m, r0 + block))
+        idx, dist = ranker.block(qfeats[sl], None if qzero is None else qzero[sl],
+                                 min(n, k + _EXTRA_CANDIDATES), k)
+        yield sl.start, sl.stop, idx, dist
+
+
+class _Ranker:
+    """float32 ranking of query blocks against prepared reference rows, exact re-measure."""
+
+    def __init__(self, ref: _Reference, reach2: np.ndarray):
+        self.ref = ref
+        self.feats32 = ref.feats.astype(np.float32)
+        self.sq32 = ref.sq.astype(np.float32)
+        self.reach2 = reach2
+        # rounded up, so that the float32 test never drops a pair the exact test keeps
+        self.reach2_32 = np.nextafter(reach2.astype(np.float32), np.float32(np.inf))
+        self.dim = ref.feats.shape[1]
+
+    def block(self, q, qzero, c, k):
+        """Support of one block of query rows as padded (indices, distances)."""
+        qsq = np.einsum("ij,ij->i", q, q)
+        # Rounding bound of the float32 form (inputs, products and sums; in d2 units).
+        tol = (16 * np.finfo(np.float32).eps * (qsq + self.ref.sq.max()) * self.dim**0.5)
+        # d2 - tol, a lower bound of every squared distance, built in place
+        d2 = q.astype(np.float32) @ self.feats32.T
+        d2 *= -2.0
+        d2 += (qsq - tol).astype(np.float32)[:, None]
+        d2 += self.sq32[None, :]
+        if self.ref.zero is not None:  # cosine: zero rows sit at distance 1, i.e. d2 = 2
+            d2[qzero] = 2.0 - tol[qzero].astype(np.float32)[:, None]
+            d2[:, self.ref.zero] = (2.0 - tol.astype(np.float32))[:, None]
+        if c < d2.shape[1]:
+            kth = _kth_upper_bound(d2, c) + 2 * tol.astype(np.float32)
+            mask = d2 <= kth[:, None]
+        else:
+            mask = np.ones(d2.shape, dtype=bool)
+        mask |= d2 <= self.reach2_32[None, :]
+        d2_width = d2.shape[1]
+        del d2
+        flat = np.flatnonzero(mask)
+        del mask
+        rows, cols = np.divmod(flat, d2_width)
+        dist = self._measure(q, qzero, rows, cols)
+        idx, out = _pad_rows(rows, cols, dist, q.shape[0])
+        positive = ((out > 0) & np.isfinite(out)).sum(axis=1)
+        crowded = np.flatnonzero(positive < min(k, self.ref.feats.shape[0]))
+        for r in crowded:  # copies fill the candidates: rank this row against every row
+            cols_r, dist_r = self._whole_row(q[r : r + 1], None if qzero is None
+                                             else qzero[r : r + 1], c)
+            idx, out = _replace_row(idx, out, r, cols_r, dist_r)
+        return idx, out
+
+    def _whole_row(self, x, xzero, c):
+        """Support of one query row measured exactly against every reference row."""
+        every = np.arange(self.ref.feats.shape[0])
+        dist = self.ref.exact(x, xzero, every[None, :], None)[0]
+        order = np.lexsort((every, dist))
+        positive = order[dist[order] > 0][:c]
+        keep = np.zeros(every.size, dtype=bool)
+        keep[positive] = True
+        keep |= dist == 0
+        keep |= self.ref._to_d2(dist) <= self.reach2
+        return every[keep], dist[keep]
+
+    def _measure(self, q, qzero, rows, cols):
+        """Exact distances of the candidate pairs, by differences, a slice of pairs at a time."""
+        dist = np.empty(rows.size, dtype=np.float64)
+        for p0 in range(0, rows.size, PAIR_BLOCK):
+            s = slice(p0, p0 + PAIR_BLOCK)
+            r, j = rows[s], cols[s]
+            diff = q[r] - self.ref.feats[j]
+            zq = None if qzero is None else qzero[r]
+            zx = None if self.ref.zero is None else self.ref.zero[j]
+            dist[s] = _finish(np.einsum("ij,ij->i", diff, diff), self.ref.metric, zq, zx)
+        return dist
+
+
+def _kth_upper_bound(d2: np.ndarray, c: int, group: int = 8) -> np.ndarray:
+    """Per row, a value with at least ``c`` entries of the row at or below it.
+
+    The c-th smallest of the minima of column groups (columns j, j + n/group, ...): each of
+    those c groups has an entry at or below it, and at most ``group * c`` entries are (so
+    only 1/group of the width is partitioned).
+    """
+    n = d2.shape[1]
+    whole = n - n % group
+    if whole // group < c:
+        return np.partition(d2, c - 1, axis=1)[:, c - 1]
+    mins = d2[:, :whole].reshape(d2.shape[0], group, whole // group).min(axis=1)
+    if whole < n:
+        mins = np.concatenate([mins, d2[:, whole:]], axis=1)
+    return np.partition(mins, c - 1, axis=1)[:, c - 1]
+
+
+def _pad_rows(rows, cols, dist, m):
+    """Pairs (row, col, distance) -> padded (m, w) arrays, each row by (distance, col)."""
+    order = np.lexsort((cols, dist, rows))
+    rows, cols, dist = rows[order], cols[order], dist[order]
+    counts = np.bincount(rows, minlength=m)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    slot = np.arange(rows.size) - starts[rows]
+    width = int(counts.max(initial=1))
+    idx = np.zeros((m, width), dtype=np.int64)
+    out = np.full((m, width), np.inf)
+    idx[rows, slot], out[rows, slot] = cols, dist
+    return idx, out
+
+
+def _replace_row(idx, out, r, cols, dist):
+    """Put one row's support (any order) into padded arrays, widening them if needed."""
+    order = np.lexsort((cols, dist))
+    idx, out = _pad_to(idx, out, cols.size)
+    idx[r], out[r] = 0, np.inf
+    idx[r, : cols.size], out[r, : cols.size] = cols[order], dist[order]
+    return idx, out
+
+
+def _pad_to(idx, out, width):
+    extra = width - idx.shape[1]
+    if extra <= 0:
+        return idx, out
+    return (np.pad(idx, ((0, 0), (0, extra))),
+            np.pad(out, ((0, 0), (0, extra)), constant_values=np.inf))
+
+
+def _stack_padded(pieces):
+    """Concatenate padded (indices, distances) blocks of possibly different widths."""
+    width = max(p[0].shape[1] for p in pieces)
+    padded = [_pad_to(i, d, width) for i, d in pieces]
+    return (np.concatenate([p[0] for p in padded]), np.concatenate([p[1] for p in padded]))

@@ -22,6 +22,7 @@ def transition_rows(
     q_train: np.ndarray,
     *,
     alpha: float,
+    first_row: int = 0,
 ) -> np.ndarray:
     """Markov transition probabilities p_j from new rows to their listed training rows.
 
@@ -37,6 +38,8 @@ def transition_rows(
     sigma_new : ndarray, shape (m,)
     sigma_train, q_train : ndarrays, shape (n,)
     alpha : float in [0, 1]
+    first_row : int, default=0
+        Number of the first row minus one, for error messages.
 
     Returns
     -------
@@ -50,7 +53,7 @@ def transition_rows(
     empty = np.flatnonzero(~np.isfinite(nearest))
     if empty.size:
         raise InputError(
-            f"New row {empty[0] + 1} (and {empty.size - 1} more) has no listed training row "
+            f"New row {first_row + empty[0] + 1} (and {empty.size - 1} more) has no listed training row "
             "to attach to; check that its values are finite."
         )
     # q(y)^a cancels in p_j = k_j / (q(y)^a q_j^a) / sum(...), so the kernel row may be
@@ -73,6 +76,7 @@ def nystrom_extend(
     *,
     alpha: float,
     diffusion_time: float,
+    first_row: int = 0,
 ) -> np.ndarray:
     """Diffusion coordinates of new rows by the Nystrom formula.
 
@@ -94,6 +98,8 @@ def nystrom_extend(
     eigenvalues : ndarray, shape (c,)
     alpha : float in [0, 1]
     diffusion_time : float >= 0
+    first_row : int, default=0
+        Number of the first row minus one, for error messages.
 
     Returns
     -------
@@ -112,6 +118,7 @@ def nystrom_extend(
                 f"{name} must have shape ({n},) like psi_train's rows; got {np.shape(arr)}."
             )
     values = np.asarray(eigenvalues, dtype=np.float64)
-    p = transition_rows(distances, indices, sigma_new, sigma_train, q_train, alpha=alpha)
+    p = transition_rows(distances, indices, sigma_new, sigma_train, q_train, alpha=alpha,
+                        first_row=first_row)
     psi_new = np.einsum("mk,mkc->mc", p, psi_train[np.asarray(indices, dtype=np.int64)]) / values
     return psi_new * time_power(values, diffusion_time)[None, :]
