@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import logging
 import time
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -122,10 +123,11 @@ def _sharded(ctx: StageContext, spec: FeatureSpec, out, out_path: str, n: int, k
     blocks = store.block_ranges(n, block)
     ctx.set_blocks_total(len(blocks))
     finished = ctx.finished_blocks(arrays)
-    merges = {
-        ctx.client.submit(_merge_block, spec, out_path, len(ranges), s, e, k, pure=False): i
+    merges = [
+        (i, partial(ctx.client.submit, _merge_block, spec, out_path, len(ranges), s, e, k,
+                    pure=False))
         for i, (s, e) in enumerate(blocks) if i not in finished
-    }
+    ]
     ctx.collect_blocks(merges, blocks, finished, desc="neighbors (merge)")
     return compiled
 
@@ -160,12 +162,12 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         ranges = store.block_ranges(n, block)
         ctx.set_blocks_total(len(ranges))
         finished = ctx.finished_blocks(arrays)
-        futures = {
-            client.submit(_exact_block, spec, out_path, s, e, k, pure=False): number
+        tasks = [
+            (number, partial(client.submit, _exact_block, spec, out_path, s, e, k, pure=False))
             for number, (s, e) in enumerate(ranges)
             if number not in finished
-        }
-        ctx.collect_blocks(futures, ranges, finished)
+        ]
+        ctx.collect_blocks(tasks, ranges, finished)
     else:
         ahead, waited, warm = warmup.collect(ctx.workdir)
         t0 = time.perf_counter()
