@@ -336,6 +336,42 @@ def kernel_support(
     return _stack_padded(pieces)
 
 
+def nearest_in_blocks(query, blocks, k, *, metric="euclidean"):
+    """Exact k nearest rows of ``query`` among reference rows given block by block.
+
+    Parameters
+    ----------
+    query : ndarray, shape (m, D)
+    blocks : iterable of (start, ndarray (b, D))
+        Consecutive reference blocks and the number of their first row; only one block and
+        the running lists are held at a time.
+    k : int
+    metric : {"euclidean", "cosine"}
+
+    Returns
+    -------
+    indices : ndarray of int64, shape (m, k)
+    distances : ndarray of float64, shape (m, k)
+        Sorted by ascending distance, ties to the smaller index (as :func:`exact_knn`, which
+        also excludes nothing when given a query).
+    """
+    m = np.shape(query)[0]
+    best_i = np.zeros((m, 0), dtype=np.int64)
+    best_d = np.zeros((m, 0))
+    for start, block in blocks:
+        # radius 0: only the k + 8 nearest (and copies) of this block come back, measured exactly
+        idx, dist = kernel_support(block, query, min(k, len(block)), np.zeros(len(block)),
+                                   metric=metric)
+        best_i = np.concatenate([best_i, idx + start], axis=1)
+        best_d = np.concatenate([best_d, dist], axis=1)
+        order = np.lexsort((best_i, best_d), axis=1)[:, :k]
+        best_i = np.take_along_axis(best_i, order, axis=1)
+        best_d = np.take_along_axis(best_d, order, axis=1)
+    if best_i.shape[1] < k or not np.all(np.isfinite(best_d)):
+        raise ValueError(f"k = {k} exceeds the number of reference rows.")
+    return best_i, best_d
+
+
 def support_block_rows(reference_rows: int) -> int:
     """Query rows per sub-block of :func:`kernel_support_blocks` for ``reference_rows`` rows."""
     return int(max(1, min(4096, _SUPPORT_BYTES // (SUPPORT_ENTRY_BYTES * max(reference_rows, 1)))))

@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 
-from eigenstream.core.neighbors import exact_knn, knn_recall
+from eigenstream.core.neighbors import knn_recall, nearest_in_blocks
 from eigenstream.core.quality import continuity, eigengap, trustworthiness
 from eigenstream.io import store
 from eigenstream.pipeline import Stage, StageContext
@@ -23,6 +23,8 @@ log = logging.getLogger(__name__)
 SAMPLE_ROWS = 1000
 MAP_ROWS = 20_000
 QUALITY_NEIGHBORS = 10
+# Graph rows read at a time for the exact neighbours of the recall sample.
+RECALL_BLOCK_ROWS = 100_000
 
 # name -> (threshold, direction, what a breach means); "min": value must be >= threshold.
 THRESHOLDS: dict[str, tuple[float, str, str]] = {
@@ -49,14 +51,37 @@ def _sample_rows(n: int, seed: int) -> np.ndarray:
     return np.sort(np.random.default_rng(seed).choice(n, size=SAMPLE_ROWS, replace=False))
 
 
-def recall_on_sample(data, stored_indices, method: str, rows: np.ndarray, metric: str) -> float:
-    """Recall of the stored kNN lists against exact neighbours on the sampled rows."""
+def recall_on_sample(query, blocks, stored_indices, method: str, rows: np.ndarray,
+                     metric: str) -> float:
+    """Recall of the stored kNN lists of the sampled rows against exact neighbours.
+
+    Parameters
+    ----------
+    query : ndarray, shape (len(rows), D)
+        The sampled graph rows.
+    blocks : iterable of (start, ndarray)
+        All graph rows, block by block (see ``core.neighbors.nearest_in_blocks``).
+    stored_indices : ndarray of int, shape (len(rows), k)
+        The stored lists of the sampled rows.
+    method : str
+        The neighbour stage's method ("exact" lists have recall 1 by construction).
+    rows : ndarray of int
+        Indices of the sampled rows.
+    metric : {"euclidean", "cosine"}
+    """
     if method == "exact":
         return 1.0
     k = stored_indices.shape[1]
-    idx, _ = exact_knn(data, k + 1, metric=metric, query=data[rows])
+    idx, _ = nearest_in_blocks(np.asarray(query, dtype=np.float64), blocks, k + 1,
+                               metric=metric)
     exact = np.array([row[row != r][:k] for row, r in zip(idx, rows, strict=True)])
-    return knn_recall(stored_indices[rows], exact)
+    return knn_recall(stored_indices, exact)
+
+
+def _graph_blocks(spec, block_rows: int = RECALL_BLOCK_ROWS):
+    """The graph rows as float64 blocks (start, values), one read at a time."""
+    for s, e in store.block_ranges(spec.n_rows, block_rows):
+        yield s, spec.load(s, e).astype(np.float64)
 
 
 def checks(values: dict[str, float | None]) -> list[dict[str, Any]]:
@@ -74,14 +99,14 @@ def checks(values: dict[str, float | None]) -> list[dict[str, Any]]:
 
 def _run(ctx: StageContext) -> dict[str, Any]:
     config = ctx.config
-    graph = graph_rows_spec(ctx.workdir, config).load().astype(np.float64)
+    graph = graph_rows_spec(ctx.workdir, config)
     everything = all_rows_spec(ctx.workdir, config)
     n_all = everything.n_rows
     subset = _map_subset(n_all, config.run.seed)
     data = (everything.load() if subset is None else everything.load_rows(subset)).astype(np.float64)
     n = data.shape[0]
     knn = ctx.input_store("neighbors")
-    distances = np.asarray(knn["distances"][...])
+    nearest = np.asarray(knn["distances"][:, 0])
     sigma = np.asarray(ctx.input_store("affinity")["sigma"][...])
     solved = ctx.input_store("solve")
     eigenvalues = np.asarray(solved["eigenvalues"][...])
@@ -91,14 +116,15 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         coord_array[...] if subset is None
         else coord_array.get_orthogonal_selection((subset, slice(None)))
     )
-    rows = _sample_rows(graph.shape[0], config.run.seed)
+    rows = _sample_rows(graph.n_rows, config.run.seed)
     sample = None if n <= SAMPLE_ROWS else SAMPLE_ROWS
     k = min(QUALITY_NEIGHBORS, max(1, (n - 1) // 2 - 1))
     rng = np.random.default_rng(config.run.seed)
     with ctx.progress(4, "checks") as bar:
         method = ctx.upstream.get("neighbors", {}).get("method", "exact")
-        recall = recall_on_sample(graph, np.asarray(knn["indices"][...]), method, rows,
-                                  config.graph.metric)
+        stored = np.asarray(knn["indices"].get_orthogonal_selection((rows, slice(None))))
+        recall = recall_on_sample(graph.load_rows(rows), _graph_blocks(graph), stored, method,
+                                  rows, config.graph.metric)
         bar.update(1)
         trust = trustworthiness(data, coords, n_neighbors=k, sample=sample, rng=rng)
         bar.update(1)
@@ -112,14 +138,14 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             "knn_recall": float(recall),
             "trustworthiness": float(trust),
             "continuity": float(cont),
-            "duplicate_fraction": float(np.mean(distances[:, 0] == 0)),
+            "duplicate_fraction": float(np.mean(nearest == 0)),
             "bandwidth_spread": float(sigma.max() / sigma.min()),
         }
         report = {
             **values,
             "component_sizes": affinity.get("component_sizes", []),
             "bridges": affinity.get("bridges", []),
-            "duplicate_rows": int(np.sum(distances[:, 0] == 0)),
+            "duplicate_rows": int(np.sum(nearest == 0)),
             "eigengap": {"after_component": int(gap_index) + 1, "gap": gap},
             "bandwidth_quantiles": dict(zip(
                 ("min", "p01", "p25", "median", "p75", "p99", "max"),
