@@ -6,7 +6,12 @@ import scipy.sparse as sp
 from scipy.sparse.linalg import eigsh
 from sklearn.datasets import load_digits
 
-from eigenstream.core.amg_lobpcg import amg_lobpcg, normalized_laplacian
+from eigenstream.core.amg_lobpcg import (
+    amg_lobpcg,
+    locality_order,
+    normalized_laplacian,
+    permuted,
+)
 from eigenstream.core.graph import alpha_normalize, symmetric_affinity
 from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
 from eigenstream.core.neighbors import exact_knn
@@ -133,3 +138,22 @@ def test_auto_choice():
     assert choose_solver("auto", 200_000, matrix_in_memory=True) == "lobpcg"
     assert choose_solver("auto", 200_000, matrix_in_memory=False) == "lanczos"
     assert choose_solver("arpack", 200_000, matrix_in_memory=True) == "arpack"
+
+
+def test_locality_order_gives_a_shuffled_path_its_band_back():
+    # A path graph has bandwidth 1 in its natural order; Cuthill-McKee orderings (Cuthill &
+    # McKee 1969) recover a bandwidth-1 order of a path from any numbering. The permuted
+    # matrix must equal scipy's own fancy indexing L[perm][:, perm].
+    n = 2000
+    shuffle = np.random.default_rng(0).permutation(n)
+    path = sp.diags([np.ones(n - 1), np.ones(n - 1)], [1, -1], shape=(n, n)).tocsr()
+    L = path[shuffle][:, shuffle].tocsr()
+    rows, cols = L.nonzero()
+    assert np.max(np.abs(rows - cols)) > 1000  # the shuffle scattered the band
+    perm = locality_order(L)
+    inv = np.argsort(perm)
+    P = permuted(L, perm, inv)
+    rows, cols = P.nonzero()
+    assert np.max(np.abs(rows - cols)) == 1
+    assert (P != L[perm][:, perm]).nnz == 0
+    assert P.has_sorted_indices

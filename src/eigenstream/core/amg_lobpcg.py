@@ -86,6 +86,26 @@ def normalized_laplacian(K: sp.spmatrix, scale: np.ndarray) -> sp.csr_matrix:
     return (minus_A + sp.identity(K.shape[0], format="csr")).tocsr()
 
 
+def locality_order(L: sp.csr_matrix) -> np.ndarray:
+    """A row order that keeps each row's non-zeros near the diagonal.
+
+    Reverse Cuthill-McKee (Cuthill & McKee 1969; George 1971), scipy's implementation.
+    """
+    from scipy.sparse.csgraph import reverse_cuthill_mckee
+
+    return np.asarray(reverse_cuthill_mckee(sp.csr_matrix(L), symmetric_mode=True),
+                      dtype=np.int64)
+
+
+def permuted(L: sp.csr_matrix, perm: np.ndarray, inv: np.ndarray) -> sp.csr_matrix:
+    """P L P^T for the order ``perm`` (``inv`` its inverse): rows gathered, columns renamed."""
+    out = sp.csr_matrix(L)[perm]
+    out.indices = inv[out.indices].astype(out.indices.dtype, copy=False)
+    out.has_sorted_indices = False
+    out.sort_indices()
+    return out
+
+
 def amg_preconditioner(L: sp.csr_matrix, trivial: np.ndarray) -> LinearOperator:
     """One smoothed-aggregation V-cycle for L + 1e-5 I, as a LinearOperator.
 
@@ -157,10 +177,20 @@ def amg_lobpcg(
         raise ValueError(f"count must be in [2, {n // 5 - 1}] for {n} rows; got {count}.")
     u0 = np.asarray(trivial, dtype=np.float64)
     u0 = u0 / np.linalg.norm(u0)
-    apply_A = apply if apply is not None else (lambda X: X - L @ X)
     if state is None:
         gen = np.random.default_rng(0 if rng is None else rng)
         state = BlockState(block=gen.standard_normal((n, b)))
+    # Work in a bandwidth-reducing order: rows of sampled data come in random order, and the
+    # products' scattered reads of x then miss the cache (4M rows: 5x slower V-cycles).
+    # States and results stay in the caller's order.
+    perm = locality_order(L)
+    inv = np.argsort(perm)
+    L = permuted(L, perm, inv)
+    if apply is not None:
+        caller_apply = apply
+        apply_A = lambda X: caller_apply(X[inv])[perm]  # noqa: E731
+    else:
+        apply_A = lambda X: X - L @ X  # noqa: E731
     counter = {"matvecs": state.matvecs, "passes": state.passes}
 
     def laplacian(X):
@@ -171,18 +201,20 @@ def amg_lobpcg(
         return (X2 - apply_A(X2)).reshape(X.shape)
 
     op = LinearOperator((n, n), matvec=laplacian, matmat=laplacian, dtype=np.float64)
-    M = amg_preconditioner(L, u0)
-    Y = u0.reshape(-1, 1)
+    M = amg_preconditioner(L, u0[perm])
+    Y = u0[perm].reshape(-1, 1)
+    block = state.block[perm]
     while True:
-        values, block, residuals, steps = _round(op, state.block, M, Y, tol)
-        state = BlockState(block=block, rounds=state.rounds + 1, steps=state.steps + steps,
-                           **counter)
+        values, block, residuals, steps = _round(op, block, M, Y, tol)
+        state = BlockState(block=block[inv], rounds=state.rounds + 1,
+                           steps=state.steps + steps, **counter)
         if np.all(residuals <= tol):
             break
         if counter["matvecs"] >= max_matvecs:
-            raise _not_converged(values, block, u0, residuals, counter["matvecs"], tol)
+            raise _not_converged(values, block[inv], u0, residuals, counter["matvecs"], tol)
         if on_round is not None:
             on_round(state)
+    block = state.block
     order = np.argsort(values)
     vals = np.concatenate([[1.0], 1.0 - values[order]])
     vecs = np.column_stack([u0, block[:, order]])
