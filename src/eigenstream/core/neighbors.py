@@ -443,8 +443,11 @@ class _Ranker:
         rows, cols = np.divmod(flat, d2_width)
         dist = self._measure(q, qzero, rows, cols)
         idx, out = _pad_rows(rows, cols, dist, q.shape[0])
+        # The c nearest are certain to be candidates; with more than c - k copies among them
+        # the k-th nearest at positive distance may lie beyond, so such rows are redone.
+        copies = (out == 0).sum(axis=1)
         positive = ((out > 0) & np.isfinite(out)).sum(axis=1)
-        crowded = np.flatnonzero(positive < min(k, self.ref.feats.shape[0]))
+        crowded = np.flatnonzero((copies > c - k) | (positive < min(k, self.ref.feats.shape[0])))
         for r in crowded:  # copies fill the candidates: rank this row against every row
             cols_r, dist_r = self._whole_row(q[r : r + 1], None if qzero is None
                                              else qzero[r : r + 1], c)
