@@ -70,7 +70,9 @@ def test_summary_keeps_compile_apart_from_search(run):
     # A fresh worker process compiles for seconds (measured 24-40 s on the 2-core machine);
     # 1 s is a floor no compilation of pynndescent's core gets under.
     assert summary["compile_seconds"] > 1.0
-    assert 0.0 <= summary["compile_wait_seconds"] <= summary["compile_seconds"] + 1.0
+    # The stage's wait also holds the time the warm-up task queued behind a block task on its
+    # worker (measured 1.06 s over the compile on a loaded 2-core CI run), hence the slack.
+    assert 0.0 <= summary["compile_wait_seconds"] <= summary["compile_seconds"] + 5.0
     assert summary["search_seconds"] > 0.0
     info = status(result.workdir)
     assert info["neighbors"]["compile_seconds"] == summary["compile_seconds"]
