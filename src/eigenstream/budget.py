@@ -157,8 +157,9 @@ def support_search_bytes(reference_rows: int, dim: int, query_rows: int) -> int:
 def block_scratch_bytes(config: Config, n_rows: int, rows: int, n_columns: int) -> int:
     """Bytes a running block task needs besides its rows (for blocks of ``rows`` rows).
 
-    Landmark mode: placing the block against the landmarks (:func:`support_search_bytes`). Full graph with exact neighbours: the neighbour stage's exact search of the
-    block against all rows. Approximate search: none (its one task is the "neighbour search"
+    Landmark mode: placing the block against the landmarks (:func:`support_search_bytes`).
+    Full graph with exact neighbours: the neighbour stage's exact search of the block against
+    all rows. Approximate search: none (its one task is the "neighbour search"
     part of :func:`estimate`).
     """
     dim = config.prep.pca_components or n_columns

@@ -11,32 +11,17 @@ from __future__ import annotations
 
 import numpy as np
 
-from eigenstream.core.neighbors import kernel_support, kernel_support_blocks
+from eigenstream.core.neighbors import kernel_support_blocks
 from eigenstream.core.nystrom import nystrom_extend
 
 
-def kernel_rows(rows, train, radius, k, *, metric="euclidean"):
-    """Training rows sharing a kernel edge with each row, as (distances, indices).
-
-    A row y is linked to its k nearest training rows at positive distance, to every training
-    row x_j with d(y, x_j) <= r_k(x_j) (the reverse edges of the union rule) and to exact
-    copies (distance 0, the self loop). Unlinked candidates get distance +inf (weight 0).
-
-    Parameters
-    ----------
-    rows : ndarray, shape (m, D)
-    train : ndarray, shape (n, D)
-    radius : ndarray, shape (n,)
-        Distance from each training row to its k-th neighbour.
-    k : int
-    metric : {"euclidean", "cosine"}
-    """
-    idx, dist = kernel_support(train, rows, k, radius, metric=metric)
-    return _linked(idx, dist, radius, k), idx
-
-
 def _linked(idx, dist, radius, k):
-    """Distances of a support (sorted rows) with the edges the union rule drops set to +inf."""
+    """Distances of a support (rows sorted) with the edges the union rule drops set to +inf.
+
+    A row y keeps its k nearest training rows at positive distance, every training row x_j
+    with d(y, x_j) <= r_k(x_j) (the reverse edges) and exact copies (distance 0, the self
+    loop); ``radius`` holds r_k of the training rows.
+    """
     positive_rank = np.cumsum(dist > 0, axis=1)
     forward = (dist > 0) & (positive_rank <= k)
     reverse = dist <= radius[idx]
