@@ -105,6 +105,28 @@ def test_approximate_knn_recall_on_digits(digits_graphs):
     assert knn_recall(a_idx, e_idx) >= 0.95
 
 
+def test_approximate_cosine_matches_exact_and_zero_rows_sit_at_one():
+    # Reference: scikit-learn's brute-force cosine kNN on digits (rows scaled by random
+    # factors, which cosine ignores) plus two zero rows, which by our convention (and
+    # scikit-learn's cosine_distances) are at distance 1 from every row.
+    X = load_digits().data.astype(np.float64)[:900]
+    X = X * np.random.default_rng(1).uniform(0.1, 10.0, (X.shape[0], 1))
+    X[[10, 500]] = 0.0
+    idx, dist = approximate_knn(X, 10, metric="cosine", seed=0, n_jobs=1)
+    ref_d, ref_i = NearestNeighbors(n_neighbors=10, algorithm="brute",
+                                    metric="cosine").fit(X).kneighbors()
+    live = np.setdiff1d(np.arange(X.shape[0]), [10, 500])
+    assert knn_recall(idx[live], ref_i[live]) >= 0.95  # common practice bar, as for Euclidean
+    true = np.take_along_axis(
+        1.0 - (X @ X.T) / np.maximum(np.outer(*2 * [np.linalg.norm(X, axis=1)]), 1e-300), idx,
+        axis=1)
+    true[[10, 500]] = 1.0
+    true[np.isin(idx, [10, 500])] = 1.0
+    np.testing.assert_allclose(dist, true, atol=1e-6)
+    assert np.all(dist[[10, 500]] == 1.0)
+    assert not np.isin(idx[live], [10, 500]).any()  # distance 1: never among the 10 nearest
+
+
 def _brute_support(train, query, k, radius, metric):
     """Reference: scipy.spatial.distance.cdist over all pairs, then the rule written out."""
     from scipy.spatial.distance import cdist

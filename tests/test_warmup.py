@@ -1,12 +1,13 @@
 """Compiling pynndescent ahead in the workers: figures in the run's summary, numba's cache folder.
 
-One pipeline run for the whole module: every fresh worker process compiles pynndescent's
-NN-descent core (about 25 s here, more with an empty numba cache), so the run uses a cluster
+One pipeline run for the whole module, on an empty numba cache of its own (so the worker
+really compiles the NN-descent core: 40-90 s here), so the run uses a cluster
 of two workers the module starts itself (kind = "address") and keeps for the checks after it.
 """
 
 from __future__ import annotations
 
+import importlib.metadata
 import json
 import socket
 
@@ -91,11 +92,15 @@ def test_compilation_is_paid_once_per_worker_process(run):
 
 def test_numba_cache_folder_receives_pynndescent_entries(run):
     folder = run[0]
-    cache = folder / "cache" / "eigenstream" / "numba" / socket.gethostname()
+    release = importlib.metadata.version("pynndescent")
+    cache = (folder / "cache" / "eigenstream" / "numba" / socket.gethostname()
+             / f"pynndescent-{release}")
     assert warmup.numba_cache_dir() == cache  # XDG_CACHE_HOME is respected
     index = [p for p in cache.rglob("*.nbi") if "pynndescent" in str(p)]
     data = [p for p in cache.rglob("*.nbc") if "pynndescent" in str(p)]
     assert index and data
+    # The NN-descent core itself (eigenstream.core.descent) is among the cached functions.
+    assert any(p.name.startswith("descent.descend-") for p in cache.rglob("*.nbi"))
 
 
 def test_graph_after_warmup_matches_exact_neighbours(run):

@@ -91,6 +91,9 @@ class SpectralMap(TransformerMixin, BaseEstimator):
         if n <= self.exact_max_rows:
             idx, dist = exact_knn(X, k, metric=self.metric, query_start=0)
         else:
+            from eigenstream.warmup import use_numba_cache_dir
+
+            use_numba_cache_dir()  # the compiled search is kept with the pipeline's
             idx, dist = approximate_knn(X, k, metric=self.metric, seed=self.random_state)
         try:
             sigma = fill_zero_bandwidths(self._sigma(dist))

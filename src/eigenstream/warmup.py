@@ -1,10 +1,13 @@
-"""Paying pynndescent's compile cost early: once per worker process, while the driver reads.
+"""Paying pynndescent's compile cost once per machine, and early: while the driver reads.
 
-pynndescent keeps its import and query functions in numba's on-disk cache, but not the
+pynndescent keeps its import and query functions in numba's on-disk cache, but not its
 NN-descent core (functions taking a distance function as an argument never hit numba's cache
-across processes, pynndescent PR 226), so every new worker process compiles it on its first
-build: tens of seconds of one core (engineering notes 3.3). A run whose neighbour stage will
-use pynndescent therefore sends a tiny build to the workers at its start
+across processes, pynndescent PR 226). Our searches therefore build through
+:mod:`eigenstream.core.descent`, a copy of that core with the distance fixed, which numba does
+cache: the first process on a machine compiles it (40-60 s of one core on the project's
+machine), every later process loads it (about 0.1 s). Still, the first run on a machine (or
+after an upgrade of pynndescent or numba) pays the compilation, so a run whose neighbour
+stage will use pynndescent sends a tiny build to the workers at its start
 (:func:`compile_ahead`): to one worker when a single task will search all rows (the task is
 then sent to it; the other workers' cores stay free for the driver), to every worker when
 the search is sharded. The read, prep and landmark stages run in the driver meanwhile, and
@@ -12,13 +15,16 @@ the neighbour stage collects the figures (:func:`collect`). Neighbour tasks call
 :func:`warm_worker` themselves too, which costs nothing in a warmed process and covers
 workers that joined later.
 
-Numba's cache is pointed at a per-user, per-machine folder (:func:`numba_cache_dir`) unless
-``NUMBA_CACHE_DIR`` is set, so what pynndescent caches survives a read-only site-packages.
+Numba's cache is pointed at a per-user, per-machine, per-pynndescent-release folder
+(:func:`numba_cache_dir`) unless ``NUMBA_CACHE_DIR`` is set, so what is cached survives a
+read-only site-packages and never mixes code of two pynndescent releases (numba checks the
+cached function's own source file, not the pynndescent code compiled into it).
 ``EIGENSTREAM_COMPILE_AHEAD=0`` turns the early submission off (for measuring it).
 """
 
 from __future__ import annotations
 
+import importlib.metadata
 import logging
 import os
 import socket
@@ -45,13 +51,17 @@ _PENDING: dict[str, list[Any]] = {}
 
 
 def numba_cache_dir() -> Path:
-    """``$XDG_CACHE_HOME/eigenstream/numba/<host>`` (``~/.cache`` when unset).
+    """``$XDG_CACHE_HOME/eigenstream/numba/<host>/pynndescent-<release>`` (``~/.cache`` when unset).
 
     The host name keeps machines apart when home folders are shared: concurrent cache writes
     over a network file system are a known race (numba issue 10128).
     """
     base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
-    return Path(base) / "eigenstream" / "numba" / socket.gethostname()
+    try:
+        release = importlib.metadata.version("pynndescent")
+    except importlib.metadata.PackageNotFoundError:
+        release = "none"
+    return Path(base) / "eigenstream" / "numba" / socket.gethostname() / f"pynndescent-{release}"
 
 
 def use_numba_cache_dir() -> Path | None:
@@ -94,7 +104,7 @@ def _first_fill(cache_dir: Path | None) -> Iterator[None]:
         return
     with open(cache_dir / ".fill.lock", "a") as fh:
         fcntl.flock(fh, fcntl.LOCK_EX)
-        if any("pynndescent" in str(p) for p in cache_dir.rglob("*.nbi")):
+        if any("descent.descend" in p.name for p in cache_dir.rglob("*.nbi")):
             fcntl.flock(fh, fcntl.LOCK_UN)
         try:
             yield
@@ -118,7 +128,7 @@ def warm_worker(metric: str = "euclidean", query: bool = False,
     Parameters
     ----------
     metric : {"euclidean", "cosine"}
-        The run's metric (each compiles its own distance code).
+        The run's metric (the sharded search compiles per metric).
     query : bool, default=False
         Also compile ``prepare`` and ``query`` (used by the sharded search).
     n_jobs : int, optional
@@ -137,15 +147,19 @@ def warm_worker(metric: str = "euclidean", query: bool = False,
             return time.perf_counter() - t0
         cache_dir = use_numba_cache_dir()
         with _first_fill(cache_dir):
-            from pynndescent import NNDescent
+            from eigenstream.core.neighbors import approximate_knn
+            from eigenstream.core.shards import build_shard_index
 
             rows = np.random.default_rng(0).standard_normal((WARMUP_ROWS, _WARMUP_COLUMNS))
             rows = rows.astype(np.float32)
-            index = NNDescent(rows, metric=metric, n_neighbors=_WARMUP_NEIGHBORS, random_state=0,
-                              n_jobs=n_jobs or _worker_threads())
-            if query:
-                index.prepare()
+            threads = n_jobs or _worker_threads()
+            if query:  # the sharded search: its own index build, then queries
+                index = build_shard_index(rows, _WARMUP_NEIGHBORS - 1, metric=metric, seed=0,
+                                          n_jobs=threads)
                 index.query(rows[:10], k=_WARMUP_NEIGHBORS)
+            else:
+                approximate_knn(rows, _WARMUP_NEIGHBORS - 1, metric=metric, seed=0,
+                                n_jobs=threads)
         _COMPILED.add(key)
     return time.perf_counter() - t0
 

@@ -201,6 +201,11 @@ def approximate_knn(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Approximate k nearest neighbours of every row by NN-descent (pynndescent).
 
+    Both metrics search with pynndescent's Euclidean build (cached on disk by
+    :mod:`eigenstream.core.descent`); for cosine the rows are first scaled to unit norm, and
+    zero rows are moved to distance sqrt(2) (cosine distance 1) from every unit row by an extra
+    column.
+
     Parameters
     ----------
     data : ndarray, shape (n, D)
@@ -219,14 +224,35 @@ def approximate_knn(
         Sorted by ascending distance.
     """
     _check_metric(metric)
-    from pynndescent import NNDescent  # heavy import (numba); only when needed
-
     data = np.asarray(data)
     if not 1 <= k <= data.shape[0] - 1:
         raise ValueError(f"k must be in [1, {data.shape[0] - 1}]; got {k}.")
-    index = NNDescent(data, metric=metric, n_neighbors=k + 1, random_state=seed, n_jobs=n_jobs)
+    from pynndescent import NNDescent  # heavy import (numba); only when needed
+
+    from eigenstream.core import descent
+
+    descent.install()
+    feats, zero = _search_features(data, metric)
+    index = NNDescent(feats, metric="euclidean", n_neighbors=k + 1, random_state=seed,
+                      n_jobs=n_jobs)
     idx, dist = index.neighbor_graph
-    return drop_self(np.asarray(idx, dtype=np.int64), np.asarray(dist, dtype=np.float64))
+    idx, dist = drop_self(np.asarray(idx, dtype=np.int64), np.asarray(dist, dtype=np.float64))
+    if metric == "cosine":
+        dist = _finish(dist**2, metric, None if zero is None else zero[:, None],
+                       None if zero is None else zero[idx])
+    return idx, dist
+
+
+def _search_features(data: np.ndarray, metric: str) -> tuple[np.ndarray, np.ndarray | None]:
+    """C-contiguous float32 rows for the Euclidean build, and the cosine zero-row mask."""
+    if metric == "euclidean":
+        return np.ascontiguousarray(data, dtype=np.float32), None
+    feats, zero = _as_features(data, metric)
+    if zero.any():
+        feats = np.hstack([feats, zero[:, None].astype(feats.dtype)])
+    else:
+        zero = None
+    return np.ascontiguousarray(feats, dtype=np.float32), zero
 
 
 def drop_self(indices: np.ndarray, distances: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
