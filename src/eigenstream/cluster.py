@@ -158,8 +158,10 @@ def _quiet_dask_logs() -> Iterator[None]:
 def make_client(cfg: ClusterConfig, memory_limit: str | None = None) -> Iterator[Client]:
     """Yield a connected Client for the run and close what was started afterwards.
 
-    Numba and BLAS threads in each worker are capped to the worker's threads, because dask
-    caps BLAS but not numba and oversubscribed cores slow the neighbour search. With a
+    BLAS threads in each worker are capped to the worker's threads, because dask caps BLAS
+    but not numba and oversubscribed cores slow the neighbour search; numba too, except
+    that local workers may run numba on all the cluster's threads when a task asks for them
+    (the single-task neighbour search; `[graph] search_threads`). With a
     ``memory_limit`` ("2GiB") each local worker process gets an equal share of it as its dask
     memory limit (thread workers get none; job-queue workers get ``[cluster] memory`` per job
     instead). For ``slurm``/``pbs`` the cluster is
@@ -168,6 +170,10 @@ def make_client(cfg: ClusterConfig, memory_limit: str | None = None) -> Iterator
     """
     threads = str(cfg.threads_per_worker)
     environ = {name: threads for name in _THREAD_VARIABLES}
+    if cfg.kind == "local":
+        # numba's pool may grow to all local threads, for the one task that searches all
+        # rows while the other workers wait (stages/neighbors.py sets the threads per call).
+        environ["NUMBA_NUM_THREADS"] = str(local_worker_count(cfg) * cfg.threads_per_worker)
     with (
         dask.config.set({"distributed.nanny.pre-spawn-environ": environ}),
         _quiet_dask_logs(),

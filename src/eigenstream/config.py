@@ -148,10 +148,12 @@ class GraphConfig:
     method: str = "auto"
     exact_max_rows: int = 20_000
     shards: int = 0
+    search_threads: int = 0
 
     def __post_init__(self) -> None:
         _int("graph", "neighbors", self.neighbors, 1)
         _int("graph", "shards", self.shards, 0)
+        _int("graph", "search_threads", self.search_threads, 0)
         _choice("graph", "metric", self.metric, ("euclidean", "cosine"))
         _choice("graph", "method", self.method, ("auto", "exact", "approximate"))
         _int("graph", "exact_max_rows", self.exact_max_rows, 0)

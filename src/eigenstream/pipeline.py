@@ -280,23 +280,24 @@ def peak_memory_bytes() -> dict[str, int]:
 
 
 def versions() -> dict[str, str]:
-    """Versions of Python and of the libraries that shape the numbers."""
-    import dask
-    import numpy
-    import pynndescent
-    import scipy
-    import sklearn
-    import zarr
+    """Versions of Python and of the libraries that shape the numbers.
+
+    Read from the installed packages' metadata: importing pynndescent (and with it numba)
+    only to ask its version would cost the driver a second and ~100 MiB.
+    """
+    from importlib.metadata import PackageNotFoundError, version
+
+    def installed(name: str) -> str:
+        try:
+            return version(name)
+        except PackageNotFoundError:
+            return "unknown"
 
     return {
         "eigenstream": __version__,
         "python": platform.python_version(),
-        "numpy": numpy.__version__,
-        "scipy": scipy.__version__,
-        "dask": dask.__version__,
-        "zarr": zarr.__version__,
-        "pynndescent": getattr(pynndescent, "__version__", "unknown"),
-        "scikit-learn": sklearn.__version__,
+        **{name: installed(name)
+           for name in ("numpy", "scipy", "dask", "zarr", "pynndescent", "scikit-learn")},
     }
 
 

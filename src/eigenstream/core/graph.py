@@ -43,6 +43,8 @@ def symmetric_affinity(
     cols, vals = indices.ravel(), weights.ravel()
     keep = (vals > 0) & (cols != rows)  # the diagonal is decided by self_loops only
     rows, cols, vals = rows[keep], cols[keep], vals[keep]
+    if not _repeats_within_rows(indices):
+        return _union_of_lists(rows, cols, vals, n, self_loops)
     parts_r, parts_c, parts_v = [rows, cols], [cols, rows], [vals, vals]
     if self_loops:
         diag = np.arange(n, dtype=np.int64)
@@ -50,6 +52,26 @@ def symmetric_affinity(
         parts_c.append(diag)
         parts_v.append(np.ones(n))
     return _csr_max(np.concatenate(parts_r), np.concatenate(parts_c), np.concatenate(parts_v), n)
+
+
+def _repeats_within_rows(indices: np.ndarray) -> bool:
+    """Does any row list one neighbour twice? (kNN lists never do.)"""
+    if indices.shape[1] < 2:
+        return False
+    ordered = np.sort(indices, axis=1)
+    return bool(np.any(ordered[:, 1:] == ordered[:, :-1]))
+
+
+def _union_of_lists(rows, cols, vals, n: int, self_loops: bool) -> sp.csr_matrix:
+    """max(W, W^T) (+ I) by scipy's sparse maximum, for W holding each (row, col) once."""
+    W = sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
+    K = W.maximum(W.T.tocsr())
+    if self_loops:
+        K = K + sp.identity(n, format="csr")  # W has no diagonal: the sum is the maximum
+    K = sp.csr_matrix(K)
+    K.sort_indices()
+    K.indices, K.indptr = K.indices.astype(np.int64), K.indptr.astype(np.int64)
+    return K
 
 
 def _csr_max(rows: np.ndarray, cols: np.ndarray, vals: np.ndarray, n: int) -> sp.csr_matrix:

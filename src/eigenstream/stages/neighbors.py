@@ -47,15 +47,37 @@ def _exact_block(spec: FeatureSpec, out_path, start, stop, k):
     return start, stop, values_checksum([idx, dist])
 
 
-def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int, float]:
-    """Search every row; returns (rows, seconds this task spent compiling pynndescent)."""
+def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int, float, int]:
+    """Search every row with ``n_jobs`` threads (at most numba's limit in this process).
+
+    Returns the rows, the seconds this task spent compiling pynndescent and the threads used.
+    """
+    import numba
+
+    n_jobs = min(n_jobs, numba.config.NUMBA_NUM_THREADS)
     compiled = warmup.warm_worker(spec.metric, n_jobs=n_jobs)
     data = spec.load()
     idx, dist = approximate_knn(data, k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
     out = store.open_group(out_path, mode="r+")
     out["indices"][...] = idx
     out["distances"][...] = spec.distances_to_input_units(dist)
-    return data.shape[0], compiled
+    return data.shape[0], compiled, n_jobs
+
+
+def search_threads(config) -> int:
+    """Threads of the single-task approximate search.
+
+    ``[graph] search_threads`` when set; else every thread of a local cluster (its other
+    workers wait while the one task runs), or one worker's threads on other cluster kinds.
+    """
+    from eigenstream.cluster import local_worker_count
+
+    cluster = config.cluster
+    if config.graph.search_threads:
+        return config.graph.search_threads
+    if cluster.kind == "local":
+        return local_worker_count(cluster) * cluster.threads_per_worker
+    return cluster.threads_per_worker
 
 
 def _shard_candidates(spec: FeatureSpec, out_path, shard: int, a: int, b: int, k: int,
@@ -64,15 +86,22 @@ def _shard_candidates(spec: FeatureSpec, out_path, shard: int, a: int, b: int, k
 
     Returns the shard and the seconds this task spent compiling pynndescent.
     """
+    import numba
+
     compiled = warmup.warm_worker(spec.metric, query=True, n_jobs=n_jobs)
     index = build_shard_index(spec.load(a, b), k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
     out = store.open_group(out_path, mode="r+")
     cand_i, cand_d = out[f"shard{shard}/indices"], out[f"shard{shard}/distances"]
     n = spec.n_rows
-    for s, e in store.block_ranges(n, block):
-        idx, dist = query_shard(index, spec.load(s, e), k, offset=a, row_ids=np.arange(s, e))
-        cand_i[s:e] = idx
-        cand_d[s:e] = dist
+    before = numba.get_num_threads()
+    numba.set_num_threads(min(n_jobs, numba.config.NUMBA_NUM_THREADS))  # this thread only
+    try:
+        for s, e in store.block_ranges(n, block):
+            idx, dist = query_shard(index, spec.load(s, e), k, offset=a, row_ids=np.arange(s, e))
+            cand_i[s:e] = idx
+            cand_d[s:e] = dist
+    finally:
+        numba.set_num_threads(before)
     return shard, compiled
 
 
@@ -174,15 +203,16 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         if config.graph.shards > 1:
             in_task = _sharded(ctx, spec, out, out_path, n, k, block, arrays)
         else:
-            n_jobs = config.cluster.threads_per_worker
+            n_jobs = search_threads(config)
             # to a worker that has compiled already (any other when it has left)
             fut = client.submit(_approximate_all, spec, out_path, k, config.run.seed, n_jobs,
                                 pure=False, workers=warm or None,
                                 allow_other_workers=bool(warm))
             with ctx.progress(n, "rows") as bar:
-                rows, in_task = fut.result()
+                rows, in_task, used = fut.result()
                 bar.update(rows)
-        timing = _timing(ahead, waited, in_task, time.perf_counter() - t0)
+            timing["search_threads"] = used
+        timing.update(_timing(ahead, waited, in_task, time.perf_counter() - t0))
     if method == "approximate" and config.graph.shards > 1:
         method = f"approximate, {config.graph.shards} shards"
     return {"method": method, "neighbors": k, "rows": n, "block_rows": block, "unit": spec.unit,
@@ -215,6 +245,7 @@ STAGE = Stage(
         "graph.method",
         "graph.exact_max_rows",
         "graph.shards",
+        "graph.search_threads",
         "run.seed",
         "cluster.threads_per_worker",
     ),
