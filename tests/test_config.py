@@ -45,6 +45,8 @@ def test_round_trip_is_lossless(tmp_path):
         ('[input]\npath = "a.npy"\n[graph]\nmetric = "manhattan"\n', ["[graph] metric", "cosine"]),
         ('[graph]\nneighbors = 5\n', ["[input]", "path"]),
         ('[input]\npath = "a.npy"\n[graph]\nneighbors = 5\n', ["bandwidth_neighbor", "neighbors"]),
+        ('[input]\npath = "a.npy"\n[graph]\nsearch_threads = -1\n',
+         ["[graph] search_threads", ">= 0"]),
         ("[input\n", ["not valid TOML"]),
     ],
 )
@@ -93,3 +95,25 @@ def test_memory_limit_refuses_a_run_that_cannot_fit_with_the_figure(tmp_path):
     budget.check(small, 2_000_000, 50)  # landmark mode fits: bounded by m, not n
     with pytest.raises(ConfigError, match="memory_limit"):
         load_config(write(tmp_path, '[input]\npath = "a.npy"\n[run]\nmemory_limit = "lots"\n'))
+
+
+def test_search_threads_auto_is_every_local_thread_and_one_worker_elsewhere():
+    # Our own rule (stages/neighbors.search_threads), written out per cluster kind.
+    import os
+
+    from eigenstream.cluster import local_worker_count
+    from eigenstream.stages.neighbors import search_threads
+
+    def cfg(graph=None, cluster=None):
+        return Config.from_dict({"input": {"path": "a.npy"}, "graph": graph or {},
+                                 "cluster": cluster or {}})
+
+    local = cfg(cluster={"workers": 3, "threads_per_worker": 2})
+    assert local_worker_count(local.cluster) == 3
+    assert search_threads(local) == 6
+    default = cfg()
+    assert search_threads(default) == max(1, min(4, os.cpu_count() or 1))
+    assert search_threads(cfg(graph={"search_threads": 5})) == 5
+    remote = cfg(cluster={"kind": "address", "address": "tcp://10.0.0.1:8786",
+                          "threads_per_worker": 4})
+    assert search_threads(remote) == 4

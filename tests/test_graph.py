@@ -34,6 +34,23 @@ def test_union_rule_and_self_loops():
     assert K0.diagonal().max() == 0.0
 
 
+def test_union_rule_with_a_neighbour_listed_twice_keeps_the_larger_weight():
+    # Lists from a search never repeat a neighbour, but the rule must not depend on it: the
+    # same dense reference, max(W, W^T) with each repeated (i, j) taken at its largest weight.
+    idx, w = _knn_kernel()
+    idx, w = idx.copy(), w.copy()
+    idx[5, 1], w[5, 1] = idx[5, 0], w[5, 0] / 2  # row 5 lists its nearest twice
+    idx[9, 2], w[9, 2] = idx[9, 3], w[9, 3] * 0 + 0.999
+    n = idx.shape[0]
+    W = np.zeros((n, n))
+    for i, (cols, ws) in enumerate(zip(idx, w, strict=True)):
+        for j, v in zip(cols, ws, strict=True):
+            W[i, j] = max(W[i, j], v)
+    K = symmetric_affinity(idx, w, n, self_loops=True)
+    assert K.indices.dtype == np.int64 and K.has_sorted_indices
+    np.testing.assert_array_equal(K.toarray(), np.maximum(W, W.T) + np.eye(n))
+
+
 def test_alpha_normalization_matches_dense_definition():
     # Coifman & Lafon, ACHA 21(1) 2006: K^(a) = Q^-a K Q^-a, d = K^(a) 1, A = D^-1/2 K^(a) D^-1/2.
     idx, w = _knn_kernel(seed=1)

@@ -75,6 +75,7 @@ def test_summary_keeps_compile_apart_from_search(run):
     # worker (measured 1.06 s over the compile on a loaded 2-core CI run), hence the slack.
     assert 0.0 <= summary["compile_wait_seconds"] <= summary["compile_seconds"] + 5.0
     assert summary["search_seconds"] > 0.0
+    assert summary["search_threads"] == 1  # kind = "address": one worker's threads
     info = status(result.workdir)
     assert info["neighbors"]["compile_seconds"] == summary["compile_seconds"]
     assert info["neighbors"]["search_seconds"] == summary["search_seconds"]
