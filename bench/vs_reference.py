@@ -6,7 +6,8 @@ For each size: the same synthetic manifold table (bench/manifold_data.py) is emb
 scikit-learn (eigen_solver "arpack" and "amg", k = 15) and by eigenstream (k = 15, default
 settings, local cluster), each in a fresh process; wall time and peak RSS of the whole process
 tree are measured by polling the OS (psutil); trustworthiness (k = 10) of each map is computed
-on the same random 2,000-row subset. Ratios are eigenstream / the faster scikit-learn solver.
+on the same random 2,000-row subset. Ratios are eigenstream / the faster scikit-learn solver. With ``--threads`` eigenstream also
+runs with its local workers as threads of one process (``[cluster] processes = false``).
 """
 
 from __future__ import annotations
@@ -44,6 +45,13 @@ seed = 0
 """
 
 
+# The same run with local workers as threads of the run's own process (one process in all).
+THREADS = """
+[cluster]
+processes = false
+"""
+
+
 def trust(X, Y, rows):
     return trustworthiness(X[rows], Y[rows], n_neighbors=10)
 
@@ -52,6 +60,9 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, nargs="+", default=[50_000, 100_000, 200_000])
     parser.add_argument("--columns", type=int, default=50)
+    parser.add_argument("--threads", action="store_true",
+                        help="also run eigenstream with thread workers ([cluster] processes = "
+                             "false), shown as 'eigenstream thr'")
     args = parser.parse_args()
     exe = sys.executable
     lines = []
@@ -68,17 +79,21 @@ def main() -> None:
                 r = measure([exe, "-c", SKLEARN, str(tmp / "x.npy"), solver, str(out)])
                 r["trust"] = trust(X, np.load(out), rows) if r["code"] == 0 else float("nan")
                 results[f"sklearn {solver}"] = r
-            work = tmp / f"work-{n}"
-            cfg = tmp / f"cfg-{n}.toml"
-            cfg.write_text(CONFIG.format(data=data, work=work))
-            r = measure([exe, "-m", "eigenstream", "-q", "run", str(cfg)])
-            if r["code"] == 0:
-                Y = np.asarray(zarr.open_group(str(work / "extend" / "data.zarr"), mode="r")
-                               ["coordinates"][...])
-                r["trust"] = trust(X, Y, rows)
-            else:
-                r["trust"] = float("nan")
-            results["eigenstream"] = r
+            variants = {"eigenstream": ""}
+            if args.threads:
+                variants["eigenstream thr"] = THREADS
+            for name, extra in variants.items():
+                work = tmp / f"work-{n}-{len(name)}"
+                cfg = tmp / f"cfg-{n}.toml"
+                cfg.write_text(CONFIG.format(data=data, work=work) + extra)
+                r = measure([exe, "-m", "eigenstream", "-q", "run", str(cfg)])
+                if r["code"] == 0:
+                    Y = np.asarray(zarr.open_group(str(work / "extend" / "data.zarr"),
+                                                   mode="r")["coordinates"][...])
+                    r["trust"] = trust(X, Y, rows)
+                else:
+                    r["trust"] = float("nan")
+                results[name] = r
             ok = [k for k in results if k.startswith("sklearn") and results[k]["code"] == 0]
             best = min(ok, key=lambda k: results[k]["seconds"]) if ok else None
             for name, r in results.items():
@@ -86,7 +101,7 @@ def main() -> None:
                 ratio_m = r["peak_rss"] / results[best]["peak_rss"] if best else float("nan")
                 lines.append(f"{n:>8} {name:<16} {r['seconds']:>9.1f} {r['peak_rss'] / 2**30:>9.2f}"
                              f" {r['trust']:>7.4f} {ratio_t:>9.2f} {ratio_m:>9.2f}")
-            print("\n".join(lines[-3:]), flush=True)
+            print("\n".join(lines[-len(results):]), flush=True)
     print(f"\n{'rows':>8} {'method':<16} {'wall s':>9} {'peak GiB':>9} {'T(10)':>7}"
           f" {'time/best':>9} {'mem/best':>9}")
     print("\n".join(lines))

@@ -229,9 +229,7 @@ def approximate_knn(
         raise ValueError(f"k must be in [1, {data.shape[0] - 1}]; got {k}.")
     from pynndescent import NNDescent  # heavy import (numba); only when needed
 
-    from eigenstream.core import descent
-
-    descent.install()
+    route_to_cached_build()
     feats, zero = _search_features(data, metric)
     index = NNDescent(feats, metric="euclidean", n_neighbors=k + 1, random_state=seed,
                       n_jobs=n_jobs)
@@ -241,6 +239,18 @@ def approximate_knn(
         dist = _finish(dist**2, metric, None if zero is None else zero[:, None],
                        None if zero is None else zero[idx])
     return idx, dist
+
+
+def route_to_cached_build() -> bool:
+    """Let pynndescent's Euclidean build run the cached copy of :mod:`eigenstream.core.descent`.
+
+    Returns False (pynndescent's own build is used) for releases other than the copied one.
+    """
+    try:
+        from eigenstream.core import descent
+    except ImportError:  # a release without the internals the copy calls
+        return False
+    return descent.install()
 
 
 def _search_features(data: np.ndarray, metric: str) -> tuple[np.ndarray, np.ndarray | None]:

@@ -24,9 +24,9 @@ def build_shard_index(data: np.ndarray, k: int, *, metric: str, seed: int, n_job
     """A prepared NN-descent index over one shard's rows."""
     from pynndescent import NNDescent
 
-    from eigenstream.core import descent
+    from eigenstream.core.neighbors import route_to_cached_build
 
-    descent.install()  # the Euclidean build compiles once per machine
+    route_to_cached_build()  # the Euclidean build compiles once per machine
     index = NNDescent(data, metric=metric, n_neighbors=min(k + 1, data.shape[0] - 1),
                       random_state=seed, n_jobs=n_jobs)
     index.prepare()
