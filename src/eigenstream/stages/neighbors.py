@@ -52,9 +52,7 @@ def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int,
 
     Returns the rows, the seconds this task spent compiling pynndescent and the threads used.
     """
-    import numba
-
-    n_jobs = min(n_jobs, numba.config.NUMBA_NUM_THREADS)
+    n_jobs = _pool_threads(n_jobs)
     compiled = warmup.warm_worker(spec.metric, n_jobs=n_jobs)
     data = spec.load()
     idx, dist = approximate_knn(data, k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
@@ -62,6 +60,13 @@ def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int,
     out["indices"][...] = idx
     out["distances"][...] = spec.distances_to_input_units(dist)
     return data.shape[0], compiled, n_jobs
+
+
+def _pool_threads(n_jobs: int) -> int:
+    """``n_jobs``, at most the size of numba's thread pool in this process."""
+    import numba
+
+    return min(n_jobs, numba.config.NUMBA_NUM_THREADS)
 
 
 def search_threads(config) -> int:
@@ -94,7 +99,7 @@ def _shard_candidates(spec: FeatureSpec, out_path, shard: int, a: int, b: int, k
     cand_i, cand_d = out[f"shard{shard}/indices"], out[f"shard{shard}/distances"]
     n = spec.n_rows
     before = numba.get_num_threads()
-    numba.set_num_threads(min(n_jobs, numba.config.NUMBA_NUM_THREADS))  # this thread only
+    numba.set_num_threads(_pool_threads(n_jobs))  # this thread only
     try:
         for s, e in store.block_ranges(n, block):
             idx, dist = query_shard(index, spec.load(s, e), k, offset=a, row_ids=np.arange(s, e))
