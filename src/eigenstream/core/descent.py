@@ -44,8 +44,6 @@ its cache folder when the first cached function is compiled).
 
 from __future__ import annotations
 
-import threading
-
 import numba
 import numpy as np
 import pynndescent
@@ -79,7 +77,6 @@ def _cached(function):
 
 build_candidates_owner = _cached(_utils.build_candidates_owner)
 deheap_sort = _cached(_utils.deheap_sort)
-_INSTALL = threading.Lock()
 
 
 @numba.njit(parallel=True, cache=True, fastmath=True)
@@ -292,8 +289,7 @@ def install() -> bool:
     """
     if pynndescent.__version__ != COPIED_FROM:
         return False
-    with _INSTALL:
-        pynndescent_.nn_descent = routed
+    pynndescent_.nn_descent = routed  # one assignment: safe from several threads
     return True
 
 

@@ -68,7 +68,6 @@ def _union_of_lists(rows, cols, vals, n: int, self_loops: bool) -> sp.csr_matrix
     K = W.maximum(W.T.tocsr())
     if self_loops:
         K = K + sp.identity(n, format="csr")  # W has no diagonal: the sum is the maximum
-    K = sp.csr_matrix(K)
     K.sort_indices()
     K.indices, K.indptr = K.indices.astype(np.int64), K.indptr.astype(np.int64)
     return K
