@@ -1,13 +1,17 @@
 """eigenstream full-graph mode vs scikit-learn's SpectralEmbedding on the same data, one run.
 
 Usage: .venv/bin/python bench/vs_reference.py [--rows 50000 100000 200000] [--columns 50]
+                                              [--processes] [--choose-from N]
 
 For each size: the same synthetic manifold table (bench/manifold_data.py) is embedded in 2-D by
 scikit-learn (eigen_solver "arpack" and "amg", k = 15) and by eigenstream (k = 15, default
 settings, local cluster), each in a fresh process; wall time and peak RSS of the whole process
 tree are measured by polling the OS (psutil); trustworthiness (k = 10) of each map is computed
-on the same random 2,000-row subset. Ratios are eigenstream / the faster scikit-learn solver. With ``--threads`` eigenstream also
-runs with its local workers as threads of one process (``[cluster] processes = false``).
+on the same random 2,000-row subset. Ratios are eigenstream / the faster scikit-learn solver.
+With ``--processes`` eigenstream also runs with its local workers as processes (``[cluster]
+processes = true``; the full graph's default is threads of one process), and with
+``--choose-from N`` it also keeps the 2 of its leading N eigenvectors that are not harmonics of
+earlier ones (``[embedding] choose_from = N``; the sheet's width first appears at psi_5).
 """
 
 from __future__ import annotations
@@ -45,10 +49,10 @@ seed = 0
 """
 
 
-# The same run with local workers as threads of the run's own process (one process in all).
-THREADS = """
+# The same run with local workers as processes (the full graph's default is threads).
+PROCESSES = """
 [cluster]
-processes = false
+processes = true
 """
 
 
@@ -60,9 +64,12 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, nargs="+", default=[50_000, 100_000, 200_000])
     parser.add_argument("--columns", type=int, default=50)
-    parser.add_argument("--threads", action="store_true",
-                        help="also run eigenstream with thread workers ([cluster] processes = "
-                             "false), shown as 'eigenstream thr'")
+    parser.add_argument("--processes", action="store_true",
+                        help="also run eigenstream with worker processes ([cluster] processes = "
+                             "true), shown as 'eigenstream proc'")
+    parser.add_argument("--choose-from", type=int, default=0,
+                        help="also run eigenstream with [embedding] choose_from = N, shown as "
+                             "'eigenstream cfN'")
     args = parser.parse_args()
     exe = sys.executable
     lines = []
@@ -80,12 +87,18 @@ def main() -> None:
                 r["trust"] = trust(X, np.load(out), rows) if r["code"] == 0 else float("nan")
                 results[f"sklearn {solver}"] = r
             variants = {"eigenstream": ""}
-            if args.threads:
-                variants["eigenstream thr"] = THREADS
-            for name, extra in variants.items():
-                work = tmp / f"work-{n}-{len(name)}"
+            if args.processes:
+                variants["eigenstream proc"] = PROCESSES
+            if args.choose_from:
+                variants[f"eigenstream cf{args.choose_from}"] = ""
+            for i, (name, extra) in enumerate(variants.items()):
+                work = tmp / f"work-{n}-{i}"
                 cfg = tmp / f"cfg-{n}.toml"
-                cfg.write_text(CONFIG.format(data=data, work=work) + extra)
+                text = CONFIG.format(data=data, work=work) + extra
+                if " cf" in name:
+                    text = text.replace("components = 2\n",
+                                        f"components = 2\nchoose_from = {args.choose_from}\n")
+                cfg.write_text(text)
                 r = measure([exe, "-m", "eigenstream", "-q", "run", str(cfg)])
                 if r["code"] == 0:
                     Y = np.asarray(zarr.open_group(str(work / "extend" / "data.zarr"),

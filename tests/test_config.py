@@ -47,6 +47,12 @@ def test_round_trip_is_lossless(tmp_path):
         ('[input]\npath = "a.npy"\n[graph]\nneighbors = 5\n', ["bandwidth_neighbor", "neighbors"]),
         ('[input]\npath = "a.npy"\n[graph]\nsearch_threads = -1\n',
          ["[graph] search_threads", ">= 0"]),
+        ('[input]\npath = "a.npy"\n[embedding]\nchoose_from = 2\n',
+         ["[embedding] choose_from", "0 (the leading eigenvectors)", "[3, 30]", "2"]),
+        ('[input]\npath = "a.npy"\n[embedding]\nchoose_from = true\n',
+         ["[embedding] choose_from", "True"]),
+        ('[input]\npath = "a.npy"\n[cluster]\nprocesses = "sometimes"\n',
+         ["[cluster] processes", '"auto"', "sometimes"]),
         ("[input\n", ["not valid TOML"]),
     ],
 )
@@ -57,6 +63,20 @@ def test_bad_values_are_refused_with_the_key_named(tmp_path, text, words):
     assert "\n" not in message
     for word in words:
         assert word in message
+
+
+@pytest.mark.parametrize(
+    ("extra", "processes"),
+    [
+        ("", False),  # full graph: thread workers
+        ("[landmarks]\ncount = 500\n", True),  # landmark mode: worker processes
+        ("[cluster]\nprocesses = true\n", True),  # an explicit choice is kept
+        ("[landmarks]\ncount = 500\n[cluster]\nprocesses = false\n", False),
+    ],
+)
+def test_local_worker_kind_follows_the_mode_unless_set(tmp_path, extra, processes):
+    cfg = load_config(write(tmp_path, '[input]\npath = "a.npy"\n' + extra))
+    assert cfg.cluster.processes is processes
 
 
 def test_unknown_suffix_names_the_option(tmp_path):

@@ -49,9 +49,9 @@ def test_nearest_in_blocks_equals_scikit_learn_brute_force(rng):
 def test_checks_compare_against_thresholds():
     good = {"max_residual": 1e-10, "components": 1, "knn_recall": 0.99,
             "trustworthiness": 0.95, "continuity": 0.95, "duplicate_fraction": 0.0,
-            "bandwidth_spread": 10.0}
+            "bandwidth_spread": 10.0, "harmonic_residual": 0.9}
     assert {c["status"] for c in checks(good)} == {"pass"}
-    bad = dict(good, max_residual=1e-3, components=3, knn_recall=0.5)
+    bad = dict(good, max_residual=1e-3, components=3, knn_recall=0.5, harmonic_residual=0.1)
     warned = {c["name"] for c in checks(bad) if c["status"] == "warn"}
-    assert warned == {"max_residual", "components", "knn_recall"}
+    assert warned == {"max_residual", "components", "knn_recall", "harmonic_residual"}
     assert set(THRESHOLDS) == set(good)

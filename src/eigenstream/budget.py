@@ -103,7 +103,7 @@ def worker_share(config: Config) -> WorkerShare:
     if cluster.kind == "local":
         workers = local_worker_count(cluster)
         source = f"{_limit_text(config)} over {workers} local worker{'s' * (workers > 1)}"
-        process = WORKER_PROCESS_BYTES if cluster.processes else 0
+        process = WORKER_PROCESS_BYTES if cluster.processes is True else 0
         return WorkerShare(total // workers, threads, "`[run] memory_limit`", workers, source,
                            process)
     if cluster.kind in cluster.JOB_QUEUE_KINDS:
@@ -285,7 +285,7 @@ def estimate(config: Config, n_rows: int, n_columns: int) -> dict[str, int]:
     dim = config.prep.pca_components or n_columns
     graph_rows = config.landmarks.count or n_rows
     k = config.graph.neighbors
-    c = config.embedding.components
+    c = config.embedding.choose_from or config.embedding.components  # pairs solved
     chunk = config.run.chunk_rows
     if chunk == "auto":
         chunk = derived_chunk_rows(config, n_rows, n_columns)[0]

@@ -254,11 +254,14 @@ def _jobqueue_client(cfg: ClusterConfig) -> Iterator[Client]:
 
 @contextmanager
 def _local_client(cfg: ClusterConfig, memory_limit: str | None) -> Iterator[Client]:
+    # "auto" left unresolved (a ClusterConfig used without a run's Config): threads, as for
+    # the full graph (config.worker_processes_for).
+    processes = cfg.processes is True
     # Worker processes talk over loopback only; threads use in-process transport.
-    network: dict[str, Any] = {"host": "127.0.0.1"} if cfg.processes else {}
+    network: dict[str, Any] = {"host": "127.0.0.1"} if processes else {}
     workers = local_worker_count(cfg)
     limit = memory_bytes(memory_limit) if memory_limit else None
-    if limit is not None and cfg.processes:
+    if limit is not None and processes:
         # Not for thread workers: they share this process, so dask would weigh the driver's
         # memory against each worker's share and pause them for good (measured); there the
         # share only sizes the row blocks (budget.py).
@@ -266,7 +269,7 @@ def _local_client(cfg: ClusterConfig, memory_limit: str | None) -> Iterator[Clie
     cluster = LocalCluster(
         n_workers=workers,
         threads_per_worker=cfg.threads_per_worker,
-        processes=cfg.processes,
+        processes=processes,
         dashboard_address=cfg.dashboard_address,
         silence_logs=logging.CRITICAL,
         **network,

@@ -542,6 +542,8 @@ def status(workdir: str | Path) -> dict[str, Any]:
         out["eigenvalues"] = summary.get("eigenvalues", [])
         out["residuals"] = summary.get("residuals", [])
         out["matvecs"] = summary.get("matvecs")
+        out["eigenvectors_kept"] = summary.get("eigenvectors_kept")
+        out["harmonic_residuals"] = summary.get("harmonic_residuals")
     quality_state = wd.stage_state("quality")
     if quality_state and quality_state.get("state") == "done":
         out["quality"] = quality_state["summary"]

@@ -59,6 +59,8 @@ _MEASURES: tuple[tuple[tuple[str, ...], str], ...] = (
 _EXTRA_LABELS = {
     "duplicate_fraction": "Fraction of rows with an exact duplicate",
     "bandwidth_spread": "Largest / smallest bandwidth",
+    "harmonic_residual": "Smallest harmonic residual of a map coordinate",
+    "harmonic_residuals": "Harmonic residual of each map coordinate",
     "bridges": "Edges added to connect the graph",
     "sample_rows": "Rows sampled for the measures",
     "quality_neighbors": "Neighbours used by the measures",
@@ -497,12 +499,13 @@ def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
     ]
     finite = [g for g in gaps if g is not None and math.isfinite(g)]
     largest = gaps.index(max(finite)) if finite else None
+    kept = info.get("eigenvectors_kept") or list(range(1, len(lam) + 1))
     rows = []
     for j, value in enumerate(lam):
         gap = gaps[j] if j < len(gaps) else None
         one_minus = None if value is None else 1.0 - value
         cells = (
-            f'<td class="num">{j + 1}</td>'
+            f'<td class="num">{_esc(str(kept[j] if j < len(kept) else j + 1))}</td>'
             + _number_cell(value, ".8f")
             + _number_cell(one_minus, ".3e")
             + (_number_cell(gap, ".3e") if gap is not None else "<td></td>")
@@ -518,8 +521,23 @@ def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
         f"<tbody>{''.join(rows)}</tbody></table>"
         "<p class=\"sub\">The trivial eigenvalue 1 is excluded. Relative residual: "
         "‖A u − λ u‖ / |λ| of each computed pair.</p>"
+        + _choice_note(info)
     )
     return _section("spectrum", "Eigenvalues", body + table)
+
+
+def _choice_note(info: Mapping[str, Any]) -> str:
+    """How the kept eigenvectors were chosen, when they are not simply the leading ones."""
+    r = _float_list(info.get("harmonic_residuals"))
+    if not r:
+        return ""
+    listed = ", ".join(f"{j + 1}: {v:.2f}" for j, v in enumerate(r) if v is not None)
+    return (
+        f'<p class="sub">Kept eigenvectors {_esc(str(info.get("eigenvectors_kept")))} of the '
+        f"leading {len(r)}: those least explained, by local linear regression, by the "
+        "eigenvectors before them (a low residual marks a harmonic of earlier ones, not a new "
+        f"direction). Residuals: {_esc(listed)}.</p>"
+    )
 
 
 def _threshold(check: Mapping[str, Any]) -> str:

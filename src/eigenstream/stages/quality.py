@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.core.harmonics import harmonic_residuals
 from eigenstream.core.neighbors import knn_recall, nearest_in_blocks
 from eigenstream.core.quality import continuity, eigengap, trustworthiness
 from eigenstream.io import store
@@ -35,6 +36,10 @@ THRESHOLDS: dict[str, tuple[float, str, str]] = {
     "continuity": (0.85, "min", "data neighbours are often torn apart on the map"),
     "duplicate_fraction": (0.05, "max", "many rows have an exact duplicate"),
     "bandwidth_spread": (1e3, "max", "bandwidths span many orders of magnitude (outliers?)"),
+    # ours: between the residuals of harmonics (0.05-0.38) and of new directions (0.6-1.0)
+    # measured on the swiss roll (methods.md §9.5), a strip and the bench sheet
+    "harmonic_residual": (0.5, "min", "a map coordinate is mostly a function of earlier ones "
+                          "(a harmonic); set [embedding] choose_from, e.g. 3 x components"),
 }
 
 
@@ -131,6 +136,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         cont = continuity(data, coords, n_neighbors=k, sample=sample, rng=rng)
         bar.update(1)
         gap_index, gap = eigengap(eigenvalues) if eigenvalues.size > 1 else (0, None)
+        harmonic = harmonic_residuals(coords, seed=config.run.seed)
         affinity = ctx.upstream.get("affinity", {})
         values = {
             "max_residual": float(np.max(residuals)),
@@ -140,6 +146,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             "continuity": float(cont),
             "duplicate_fraction": float(np.mean(nearest == 0)),
             "bandwidth_spread": float(sigma.max() / sigma.min()),
+            "harmonic_residual": float(harmonic.min()),
         }
         report = {
             **values,
@@ -147,6 +154,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             "bridges": affinity.get("bridges", []),
             "duplicate_rows": int(np.sum(nearest == 0)),
             "eigengap": {"after_component": int(gap_index) + 1, "gap": gap},
+            "harmonic_residuals": harmonic.tolist(),
             "bandwidth_quantiles": dict(zip(
                 ("min", "p01", "p25", "median", "p75", "p99", "max"),
                 np.quantile(sigma, [0, 0.01, 0.25, 0.5, 0.75, 0.99, 1]).tolist(), strict=True,
@@ -190,7 +198,7 @@ def _bandwidth_plot(sigma: np.ndarray, path) -> None:
 
 STAGE = Stage(
     name="quality",
-    version=1,
+    version=2,
     config_keys=("graph.metric",),
     inputs=("extend", "affinity", "neighbors"),
     # trustworthiness on more than MAP_ROWS rows is measured within a seeded subset of them

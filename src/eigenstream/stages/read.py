@@ -58,6 +58,12 @@ def check_row_count(config: Config, n_rows: int, where: str) -> None:
             f"`[embedding] components` = {c} must be less than the number of rows minus one "
             f"({n_rows - 1} for {where}); lower it."
         )
+    m = config.embedding.choose_from
+    if m >= n_rows - 1:
+        raise ConfigError(
+            f"`[embedding] choose_from` = {m} must be less than the number of rows minus one "
+            f"({n_rows - 1} for {where}); lower it (or 0)."
+        )
 
 
 def _run(ctx: StageContext) -> dict[str, Any]:

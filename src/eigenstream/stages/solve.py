@@ -5,7 +5,10 @@ block by row block). ``[solver] method = "auto"`` uses LOBPCG with a multigrid p
 from 50,000 rows up when K fits in memory, else our thick-restart Lanczos. Both save their
 state to ``solve/checkpoint`` (after Lanczos restarts / LOBPCG rounds) for resuming. Outputs in ``solve/data.zarr``: ``eigenvalues`` (descending, trivial one
 removed), ``residuals`` (relative, one per pair) and ``psi`` (n, components), the right
-eigenvectors of the Markov matrix with signs fixed by the documented rule.
+eigenvectors of the Markov matrix with signs fixed by the documented rule. With
+``[embedding] choose_from = N`` the leading N pairs are solved and the ``components`` that are
+not harmonics of earlier ones are kept (local linear regression, Dsilva et al. 2018); the
+summary lists which, with every candidate's eigenvalue and regression residual.
 """
 
 from __future__ import annotations
@@ -21,6 +24,7 @@ import numpy as np
 from eigenstream import budget
 from eigenstream.checkpoint import STOP
 from eigenstream.core.amg_lobpcg import BlockState
+from eigenstream.core.harmonics import choose_coordinates, harmonic_residuals
 from eigenstream.core.lanczos import LanczosState
 from eigenstream.core.spectral import choose_solver, solve_embedding
 from eigenstream.io import store
@@ -97,7 +101,7 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
             K.to_scipy() if solver == "lobpcg" else counted,
             scale,
             degrees,
-            components=config.embedding.components,
+            components=config.embedding.choose_from or config.embedding.components,
             diffusion_time=config.embedding.diffusion_time,
             tol=config.solver.tol,
             max_matvecs=config.solver.max_matvecs,
@@ -108,15 +112,20 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
             on_restart=on_state if solver in ("lanczos", "lobpcg") else None,
         )
     clear_checkpoint(ctx)
+    choice = choose(emb, config)
     out = ctx.store(mode="w")
-    store.write_small(out, "eigenvalues", emb.eigenvalues)
-    store.write_small(out, "residuals", emb.residuals)
-    psi = store.create_array(out, "psi", shape=emb.psi.shape, chunk_rows=config.run.chunk_rows,
+    store.write_small(out, "eigenvalues", emb.eigenvalues[choice["kept"]])
+    store.write_small(out, "residuals", emb.residuals[choice["kept"]])
+    vectors = emb.psi[:, choice["kept"]]
+    psi = store.create_array(out, "psi", shape=vectors.shape, chunk_rows=config.run.chunk_rows,
                              dtype=np.float64)
-    psi[...] = emb.psi
+    psi[...] = vectors
     return {
-        "eigenvalues": emb.eigenvalues.tolist(),
-        "residuals": emb.residuals.tolist(),
+        "eigenvalues": emb.eigenvalues[choice["kept"]].tolist(),
+        "residuals": emb.residuals[choice["kept"]].tolist(),
+        "eigenvectors_kept": [int(i) + 1 for i in choice["kept"]],
+        "harmonic_residuals": choice["harmonic_residuals"],
+        "candidate_eigenvalues": emb.eigenvalues.tolist() if choice["chosen"] else None,
         "matvecs": int(emb.matvecs),
         "graph_passes": int(emb.passes or emb.matvecs),
         "lobpcg_steps": int(emb.steps) if solver == "lobpcg" else None,
@@ -125,6 +134,26 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
         "resumed_from_restart": _position(state),
         "max_residual": float(np.max(emb.residuals)),
     }
+
+
+def choose(emb, config) -> dict[str, Any]:
+    """Which of the solved eigenvectors become coordinates.
+
+    With ``[embedding] choose_from = 0`` the leading ``components``; else the ``components``
+    that local linear regression finds least explained by the eigenvectors before them
+    (:mod:`eigenstream.core.harmonics`), in eigenvalue order. ``kept`` indexes the
+    non-trivial eigenvectors from 0.
+    """
+    count = config.embedding.components
+    if not config.embedding.choose_from:
+        return {"kept": np.arange(count), "harmonic_residuals": None, "chosen": False}
+    t = time.perf_counter()
+    residuals = harmonic_residuals(emb.psi, seed=config.run.seed)
+    kept = choose_coordinates(residuals, count)
+    log.info("solve: kept eigenvectors %s of %d (local linear regression residuals %s; %.1f s)",
+             [int(i) + 1 for i in kept], emb.psi.shape[1],
+             " ".join(f"{r:.2f}" for r in residuals), time.perf_counter() - t)
+    return {"kept": kept, "harmonic_residuals": [float(r) for r in residuals], "chosen": True}
 
 
 def _position(state) -> int | None:
@@ -195,6 +224,7 @@ STAGE = Stage(
     version=3,
     config_keys=(
         "embedding.components",
+        "embedding.choose_from",
         "solver.method",
         "solver.tol",
         "solver.max_matvecs",
