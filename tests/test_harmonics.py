@@ -1,6 +1,7 @@
 """Harmonic-eigenvector residuals: analytic eigenfunctions, scikit-learn, the definition."""
 
 import tracemalloc
+import warnings
 
 import numpy as np
 import pytest
@@ -246,3 +247,23 @@ def test_run_keeps_the_short_direction_of_a_strip(tmp_path):
         for run in (leading, chosen)
     ]
     assert [v["harmonic_residual"] for v in verdicts] == ["warn", "pass"]
+
+
+def test_isolated_rows_and_indicator_like_vectors_stay_finite(rng):
+    # Definition (Dsilva et al. 2018): an unpredictable column has r near 1. Here the earlier
+    # vector is indicator-like, as for well separated groups: most rows crowd one value, a
+    # small group sits far away, and a chain of rows ~27 bandwidths apart has kernel weights in
+    # the subnormal range (exp(-27^2) ~ 1e-317). Found on an invented table of household load
+    # profiles, where the residual came out infinite with an overflow warning.
+    body = np.r_[rng.uniform(-0.45, -0.43, 2700), 2.3 + 1e-4 * rng.standard_normal(290)]
+    width = np.median(pdist(body[:, None])) / 3  # harmonics' bandwidth rule, applied by hand
+    for _ in range(3):  # the chain shifts the median a little; settle it
+        chain = 3.0 + np.cumsum(np.linspace(26.8, 27.2, 10)) * width
+        first = np.r_[body, chain]
+        width = np.median(pdist(first[:, None])) / 3
+    vectors = np.c_[first, rng.standard_normal(first.size)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no overflow or invalid-value warnings either
+        r = harmonic_residuals(vectors)
+    assert np.all(np.isfinite(r))
+    assert 0.9 < r[1] < 1.2

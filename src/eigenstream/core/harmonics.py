@@ -26,6 +26,17 @@ from scipy.spatial.distance import cdist, pdist
 
 _SCRATCH_BYTES = 32 * 2**20  # working memory of one block of leave-one-out fits
 _RCOND = 1e-12  # eigenvalues of a local Gram matrix below this fraction of its largest are dropped
+# Ridge on the slope block of each local Gram matrix: _RIDGE of the row's total weight (points
+# are in bandwidth units, so a well-spread neighbourhood has slope entries near the weight) plus
+# _RIDGE_ROUNDING of the uncentred second moment, 1e5 times the rounding left in the centred
+# block by the cancellation (~1e-16 of it). Where the neighbours do not spread in some
+# direction (e.g. an indicator-like eigenvector whose rows share one value, far from the mean
+# in bandwidth units) that block is rounding noise; the ridge keeps its inverse bounded and
+# turns the fit there into a local average.
+_RIDGE = 1e-8
+_RIDGE_ROUNDING = 1e-11
+# Total kernel weight below which a row has no neighbour (exp(-d^2) with d > ~5.3 bandwidths).
+_MIN_WEIGHT = 1e-12
 
 
 def harmonic_residuals(
@@ -191,8 +202,19 @@ def _local_intercepts(moments: np.ndarray, centres: np.ndarray, dim: int) -> np.
     gram[:, 0, 0] = s0
     gram[:, 0, 1:] = s1c
     gram[:, 1:, 0] = s1c
-    gram[:, 1:, 1:] = s2c
+    trace = np.einsum("bii->b", s2)  # scale of the uncentred terms that cancel in s2c
+    ridge = _RIDGE * s0 + _RIDGE_ROUNDING * trace
+    gram[:, 1:, 1:] = s2c + ridge[:, None, None] * np.eye(dim)
     rhs = np.concatenate([t0[:, None], t1 - t0[:, None] * centres], axis=1)
+    # Per unit of the row's total weight, so that rows whose neighbours all lie many bandwidths
+    # away (weights near the underflow limit) neither overflow nor lose precision; a row with
+    # no weight worth the name is isolated and gets the fit 0.
+    isolated = s0 <= _MIN_WEIGHT
+    total = np.where(isolated, 1.0, s0)
+    gram /= total[:, None, None]
+    rhs /= total[:, None]
+    gram[isolated] = np.eye(dim + 1)
+    rhs[isolated] = 0.0
     return _solve_intercepts(gram, rhs)
 
 
