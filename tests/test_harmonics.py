@@ -235,7 +235,7 @@ def test_run_keeps_the_short_direction_of_a_strip(tmp_path):
     chosen = _run_strip(tmp_path, 5)
     summary = chosen._wd.stage_state("solve")["summary"]
     assert summary["eigenvectors_kept"] == [1, 4]
-    assert len(summary["harmonic_residuals"]) == 5 and len(summary["candidate_eigenvalues"]) == 5
+    assert len(summary["candidate_harmonic_residuals"]) == 5 and len(summary["candidate_eigenvalues"]) == 5
     Y = np.asarray(chosen.coordinates[...])
     assert abs(spearmanr(Y[:, 1], y)[0]) > 0.9
     # the kept pairs are the solved pairs 1 and 4, with their own eigenvalues

@@ -543,7 +543,7 @@ def status(workdir: str | Path) -> dict[str, Any]:
         out["residuals"] = summary.get("residuals", [])
         out["matvecs"] = summary.get("matvecs")
         out["eigenvectors_kept"] = summary.get("eigenvectors_kept")
-        out["harmonic_residuals"] = summary.get("harmonic_residuals")
+        out["candidate_harmonic_residuals"] = summary.get("candidate_harmonic_residuals")
     quality_state = wd.stage_state("quality")
     if quality_state and quality_state.get("state") == "done":
         out["quality"] = quality_state["summary"]

@@ -528,7 +528,7 @@ def _spectrum(info: Mapping[str, Any], uris: dict[str, str]) -> str:
 
 def _choice_note(info: Mapping[str, Any]) -> str:
     """How the kept eigenvectors were chosen, when they are not simply the leading ones."""
-    r = _float_list(info.get("harmonic_residuals"))
+    r = _float_list(info.get("candidate_harmonic_residuals"))
     if not r:
         return ""
     listed = ", ".join(f"{j + 1}: {v:.2f}" for j, v in enumerate(r) if v is not None)

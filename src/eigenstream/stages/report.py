@@ -29,7 +29,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     residuals = np.asarray(solved["residuals"][...])
     color = store.read_labels(read_group["color"]) if "color" in read_group else None
     n, c = coords.shape
-    solve_summary = (wd.stage_state("solve") or {}).get("summary") or {}
+    solve_summary = ctx.upstream.get("solve", {})
     with ctx.progress(3, "files") as bar:
         if c >= 2:
             plot_map(coords, wd.path / MAP_FILE, color=color, color_label=config.map.color_column,
@@ -46,7 +46,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
             "eigenvalues": eigenvalues.tolist(),
             "residuals": residuals.tolist(),
             "eigenvectors_kept": solve_summary.get("eigenvectors_kept"),
-            "harmonic_residuals": solve_summary.get("harmonic_residuals"),
+            "candidate_harmonic_residuals": solve_summary.get("candidate_harmonic_residuals"),
             "stages": ctx.upstream,
             "timings": {name: s.get("seconds") for name, s in _stage_states(wd).items()},
             "peak_memory": peak_memory_bytes(),

@@ -112,20 +112,20 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
             on_restart=on_state if solver in ("lanczos", "lobpcg") else None,
         )
     clear_checkpoint(ctx)
-    choice = choose(emb, config)
+    kept, candidate_residuals = choose(emb, config)
     out = ctx.store(mode="w")
-    store.write_small(out, "eigenvalues", emb.eigenvalues[choice["kept"]])
-    store.write_small(out, "residuals", emb.residuals[choice["kept"]])
-    vectors = emb.psi[:, choice["kept"]]
+    store.write_small(out, "eigenvalues", emb.eigenvalues[kept])
+    store.write_small(out, "residuals", emb.residuals[kept])
+    vectors = emb.psi[:, kept]
     psi = store.create_array(out, "psi", shape=vectors.shape, chunk_rows=config.run.chunk_rows,
                              dtype=np.float64)
     psi[...] = vectors
     return {
-        "eigenvalues": emb.eigenvalues[choice["kept"]].tolist(),
-        "residuals": emb.residuals[choice["kept"]].tolist(),
-        "eigenvectors_kept": [int(i) + 1 for i in choice["kept"]],
-        "harmonic_residuals": choice["harmonic_residuals"],
-        "candidate_eigenvalues": emb.eigenvalues.tolist() if choice["chosen"] else None,
+        "eigenvalues": emb.eigenvalues[kept].tolist(),
+        "residuals": emb.residuals[kept].tolist(),
+        "eigenvectors_kept": [int(i) + 1 for i in kept],
+        "candidate_harmonic_residuals": candidate_residuals,
+        "candidate_eigenvalues": emb.eigenvalues.tolist() if candidate_residuals else None,
         "matvecs": int(emb.matvecs),
         "graph_passes": int(emb.passes or emb.matvecs),
         "lobpcg_steps": int(emb.steps) if solver == "lobpcg" else None,
@@ -136,24 +136,24 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
     }
 
 
-def choose(emb, config) -> dict[str, Any]:
-    """Which of the solved eigenvectors become coordinates.
+def choose(emb, config) -> tuple[np.ndarray, list[float] | None]:
+    """Which of the solved eigenvectors become coordinates, and the residuals behind the choice.
 
-    With ``[embedding] choose_from = 0`` the leading ``components``; else the ``components``
-    that local linear regression finds least explained by the eigenvectors before them
-    (:mod:`eigenstream.core.harmonics`), in eigenvalue order. ``kept`` indexes the
+    With ``[embedding] choose_from = 0`` the leading ``components`` (no residuals); else the
+    ``components`` that local linear regression finds least explained by the eigenvectors
+    before them (:mod:`eigenstream.core.harmonics`), in eigenvalue order. Indices count the
     non-trivial eigenvectors from 0.
     """
     count = config.embedding.components
     if not config.embedding.choose_from:
-        return {"kept": np.arange(count), "harmonic_residuals": None, "chosen": False}
+        return np.arange(count), None
     t = time.perf_counter()
     residuals = harmonic_residuals(emb.psi, seed=config.run.seed)
     kept = choose_coordinates(residuals, count)
     log.info("solve: kept eigenvectors %s of %d (local linear regression residuals %s; %.1f s)",
              [int(i) + 1 for i in kept], emb.psi.shape[1],
              " ".join(f"{r:.2f}" for r in residuals), time.perf_counter() - t)
-    return {"kept": kept, "harmonic_residuals": [float(r) for r in residuals], "chosen": True}
+    return kept, [float(r) for r in residuals]
 
 
 def _position(state) -> int | None:
