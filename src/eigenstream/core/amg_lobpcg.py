@@ -136,7 +136,6 @@ def amg_lobpcg(
     state: BlockState | None = None,
     on_round: Callable[[BlockState], None] | None = None,
     apply: Callable[[np.ndarray], np.ndarray] | None = None,
-    wanted: int | None = None,
 ) -> BlockResult:
     """The ``count`` largest eigenpairs of A = I - L, the first being the trivial one.
 
@@ -162,10 +161,6 @@ def amg_lobpcg(
     apply : callable, optional
         Applies A to an (n, b) block; default ``block - L @ block``. Lets the caller count or
         place the products.
-    wanted : int, optional
-        Stop when the ``wanted`` largest pairs (trivial one included) meet ``tol``; the others
-        of the block only speed those up (guard vectors) and are returned as they are.
-        Default: all ``count``.
 
     Returns
     -------
@@ -209,12 +204,11 @@ def amg_lobpcg(
     M = amg_preconditioner(L, u0[perm])
     Y = u0[perm].reshape(-1, 1)
     block = state.block[perm]
-    watched = b if wanted is None else min(b, max(1, wanted - 1))
     while True:
         values, block, residuals, steps = _round(op, block, M, Y, tol)
         state = BlockState(block=block[inv], rounds=state.rounds + 1,
                            steps=state.steps + steps, **counter)
-        if np.all(residuals[np.argsort(values)[:watched]] <= tol):
+        if np.all(residuals <= tol):
             break
         if counter["matvecs"] >= max_matvecs:
             raise _not_converged(values, block[inv], u0, residuals, counter["matvecs"], tol)

@@ -502,7 +502,6 @@ def solve_embedding(
         block = amg_lobpcg(
             normalized_laplacian(K_or_matvec, scale), sqrt_d, count, tol=tol,
             max_matvecs=max_matvecs, rng=seed, state=state, on_round=on_restart,
-            wanted=components + 1,  # the extra pairs guard, they need not converge
         )
         result = SpectralResult(values=block.values, vectors=block.vectors,
                                 matvecs=block.matvecs)
