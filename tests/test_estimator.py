@@ -61,3 +61,24 @@ def test_bad_settings_are_refused(roll):
     model = SpectralMap(n_components=2).fit(X[:200])
     with pytest.raises(InputError, match="columns"):
         model.transform(X[:5, :2])
+
+
+def test_choose_from_keeps_the_height_of_the_roll(roll):
+    # methods.md 9.5 (measured; the harmonics failure: Gerber et al. 2007, Dsilva et al. 2018):
+    # the leading pair of a swiss roll is the arc length and its harmonic; with local linear
+    # regression selection the chosen pair must contain psi_1 and the height vector (fair bar:
+    # |Spearman(height)| >= 0.65; measured here: kept [1, 4], 0.746, leading pair 0.052).
+    # Placing the training rows still reproduces them (9.7).
+    from scipy.stats import spearmanr
+
+    X, t = roll
+    leading = SpectralMap(n_components=2, n_neighbors=12).fit(X)
+    model = SpectralMap(n_components=2, n_neighbors=12, choose_from=8).fit(X)
+    assert model.eigenvectors_kept_[0] == 1 and model.eigenvectors_kept_[1] > 2
+    assert len(model.candidate_harmonic_residuals_) == 8
+    assert abs(spearmanr(model.embedding_[:, 0], t).statistic) >= 0.99
+    assert abs(spearmanr(model.embedding_[:, 1], X[:, 1]).statistic) >= 0.65
+    assert abs(spearmanr(leading.embedding_[:, 1], X[:, 1]).statistic) < 0.2
+    assert np.max(np.abs(model.transform(X) - model.embedding_)) < 1e-6
+    with pytest.raises(ConfigError, match="choose_from"):
+        SpectralMap(n_components=2, choose_from=2).fit(X[:200])

@@ -8,6 +8,7 @@ from sklearn.utils.validation import check_array, check_is_fitted
 
 from eigenstream.core.extension import extend_rows
 from eigenstream.core.graph import alpha_normalize, symmetric_affinity
+from eigenstream.core.harmonics import choose_coordinates, harmonic_residuals
 from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
 from eigenstream.core.neighbors import approximate_knn, exact_knn
 from eigenstream.core.spectral import solve_embedding
@@ -40,17 +41,27 @@ class SpectralMap(TransformerMixin, BaseEstimator):
     tol : float, default=1e-8
         Eigensolver tolerance.
     random_state : int, default=0
+    choose_from : int, default=0
+        0: the coordinates are the leading ``n_components`` eigenvectors. N (at least
+        ``n_components + 1``, at most 30): the leading N are computed and the ``n_components``
+        that local linear regression on the earlier ones explains least are kept, dropping
+        harmonics of directions already mapped (Dsilva et al. 2018), as
+        ``[embedding] choose_from`` does in a run.
 
     Attributes
     ----------
     embedding_ : ndarray of shape (n_samples, n_components)
     eigenvalues_ : ndarray of shape (n_components,)
     residuals_ : ndarray of shape (n_components,)
+    eigenvectors_kept_ : list of int
+        Which eigenvectors (1 = the first non-trivial one) the coordinates are.
+    candidate_harmonic_residuals_ : list of float or None
+        With ``choose_from``: the regression residual of each of the leading N.
     """
 
     def __init__(self, n_components=2, *, n_neighbors=15, bandwidth="adaptive",
                  bandwidth_neighbor=7, alpha=1.0, diffusion_time=1.0, metric="euclidean",
-                 exact_max_rows=20_000, tol=1e-8, random_state=0):
+                 exact_max_rows=20_000, tol=1e-8, random_state=0, choose_from=0):
         self.n_components = n_components
         self.n_neighbors = n_neighbors
         self.bandwidth = bandwidth
@@ -61,6 +72,7 @@ class SpectralMap(TransformerMixin, BaseEstimator):
         self.exact_max_rows = exact_max_rows
         self.tol = tol
         self.random_state = random_state
+        self.choose_from = choose_from
 
     def _check_settings(self, n: int) -> None:
         k = self.n_neighbors
@@ -73,6 +85,15 @@ class SpectralMap(TransformerMixin, BaseEstimator):
         if self.n_components < 1 or self.n_components >= n - 1:
             raise ConfigError(
                 f"`n_components` must be in [1, {n - 2}] for {n} rows; got {self.n_components!r}."
+            )
+        m = self.choose_from
+        low, high = self.n_components + 1, min(30, n - 2)
+        if not isinstance(m, int | np.integer) or isinstance(m, bool) or not (
+            m == 0 or low <= m <= high
+        ):
+            raise ConfigError(
+                f"`choose_from` must be 0 or an integer in [{low}, {high}] for {n} rows and "
+                f"{self.n_components} components; got {m!r}."
             )
         if self.bandwidth == "adaptive" and self.bandwidth_neighbor > k:
             raise ConfigError("`bandwidth_neighbor` must not exceed `n_neighbors`.")
@@ -102,7 +123,8 @@ class SpectralMap(TransformerMixin, BaseEstimator):
         K = symmetric_affinity(idx, gaussian_weights(dist, sigma, sigma[idx]), n, self_loops=True)
         norm = alpha_normalize(K, float(self.alpha))
         emb = solve_embedding(
-            K.__matmul__, norm.scale, norm.degrees, components=self.n_components,
+            K.__matmul__, norm.scale, norm.degrees,
+            components=self.choose_from or self.n_components,
             diffusion_time=float(self.diffusion_time), tol=self.tol, max_matvecs=200_000,
             seed=self.random_state,
         )
@@ -111,10 +133,16 @@ class SpectralMap(TransformerMixin, BaseEstimator):
         self.radius_ = dist[:, k - 1]
         self.q_ = norm.q
         self.degrees_ = norm.degrees
-        self.psi_ = emb.psi
-        self.eigenvalues_ = emb.eigenvalues
-        self.residuals_ = emb.residuals
-        self.embedding_ = emb.coordinates
+        kept, self.candidate_harmonic_residuals_ = np.arange(self.n_components), None
+        if self.choose_from:
+            r = harmonic_residuals(emb.psi, seed=self.random_state)
+            kept = choose_coordinates(r, self.n_components)
+            self.candidate_harmonic_residuals_ = r.tolist()
+        self.eigenvectors_kept_ = [int(i) + 1 for i in kept]
+        self.psi_ = emb.psi[:, kept]
+        self.eigenvalues_ = emb.eigenvalues[kept]
+        self.residuals_ = emb.residuals[kept]
+        self.embedding_ = emb.coordinates[:, kept]
         self.n_features_in_ = X.shape[1]
         return self
 
