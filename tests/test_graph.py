@@ -51,6 +51,26 @@ def test_union_rule_with_a_neighbour_listed_twice_keeps_the_larger_weight():
     np.testing.assert_array_equal(K.toarray(), np.maximum(W, W.T) + np.eye(n))
 
 
+def test_union_rule_with_zero_weights_self_entries_and_rows_without_lists():
+    # The same dense reference (von Luxburg 2007) for lists a search does not produce but the
+    # rule must handle: zero weights (not stored), a row listing itself (decided by self_loops
+    # only) and fewer lists than vertices (vertices 150..159 have no list of their own).
+    idx, w = _knn_kernel()
+    idx, w = idx.copy(), w.copy()
+    w[3, :2] = 0.0
+    idx[7, 4] = 7
+    n = idx.shape[0] + 10
+    W = np.zeros((n, n))
+    for i, (cols, ws) in enumerate(zip(idx, w, strict=True)):
+        for j, v in zip(cols, ws, strict=True):
+            if j != i:
+                W[i, j] = v
+    for loops, diagonal in ((True, np.eye(n)), (False, 0.0)):
+        K = symmetric_affinity(idx, w, n, self_loops=loops)
+        assert K.shape == (n, n) and K.has_sorted_indices and np.all(K.data > 0)
+        np.testing.assert_array_equal(K.toarray(), np.maximum(W, W.T) + diagonal)
+
+
 def test_alpha_normalization_matches_dense_definition():
     # Coifman & Lafon, ACHA 21(1) 2006: K^(a) = Q^-a K Q^-a, d = K^(a) 1, A = D^-1/2 K^(a) D^-1/2.
     idx, w = _knn_kernel(seed=1)

@@ -39,12 +39,12 @@ def symmetric_affinity(
     """
     indices = np.asarray(indices, dtype=np.int64)
     weights = np.asarray(weights, dtype=np.float64)
+    if not _repeats_within_rows(indices):
+        return _union_of_lists(indices, weights, n, self_loops)
     rows = np.repeat(np.arange(indices.shape[0], dtype=np.int64), indices.shape[1])
     cols, vals = indices.ravel(), weights.ravel()
     keep = (vals > 0) & (cols != rows)  # the diagonal is decided by self_loops only
     rows, cols, vals = rows[keep], cols[keep], vals[keep]
-    if not _repeats_within_rows(indices):
-        return _union_of_lists(rows, cols, vals, n, self_loops)
     parts_r, parts_c, parts_v = [rows, cols], [cols, rows], [vals, vals]
     if self_loops:
         diag = np.arange(n, dtype=np.int64)
@@ -62,12 +62,32 @@ def _repeats_within_rows(indices: np.ndarray) -> bool:
     return bool(np.any(ordered[:, 1:] == ordered[:, :-1]))
 
 
-def _union_of_lists(rows, cols, vals, n: int, self_loops: bool) -> sp.csr_matrix:
-    """max(W, W^T) (+ I) by scipy's sparse maximum, for W holding each (row, col) once."""
-    W = sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
-    K = W.maximum(W.T.tocsr())
+def _union_of_lists(indices: np.ndarray, weights: np.ndarray, n: int,
+                    self_loops: bool) -> sp.csr_matrix:
+    """max(W, W^T) (+ I) by scipy's sparse maximum, for lists holding each neighbour once.
+
+    W is built row by row straight from the lists (each row's own entries, the diagonal
+    included when ``self_loops``), without the triplet form: the union's transient memory is
+    then W, its transpose and the result.
+    """
+    if indices.shape[0] < n:  # vertices without a list of their own: empty rows
+        pad = ((0, n - indices.shape[0]), (0, 0))
+        indices, weights = np.pad(indices, pad), np.pad(weights, pad)
+    m = n
+    own = np.arange(m, dtype=np.int64)[:, None]
+    keep = (weights > 0) & (indices != own)  # the diagonal is decided by self_loops only
     if self_loops:
-        K = K + sp.identity(n, format="csr")  # W has no diagonal: the sum is the maximum
+        keep = np.c_[np.ones(m, dtype=bool), keep]
+        indices = np.c_[own, indices]
+        weights = np.c_[np.ones(m), weights]
+    index_dtype = np.int32 if n < 2**31 else np.int64
+    indptr = np.zeros(m + 1, dtype=np.int64)
+    np.cumsum(keep.sum(axis=1), out=indptr[1:])
+    W = sp.csr_matrix((weights[keep], indices[keep].astype(index_dtype), indptr), shape=(n, n))
+    del keep, indices, weights
+    W.sort_indices()
+    K = W.maximum(W.T.tocsr())
+    del W
     K.sort_indices()
     K.indices, K.indptr = K.indices.astype(np.int64), K.indptr.astype(np.int64)
     return K
