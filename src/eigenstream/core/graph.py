@@ -73,15 +73,14 @@ def _union_of_lists(indices: np.ndarray, weights: np.ndarray, n: int,
     if indices.shape[0] < n:  # vertices without a list of their own: empty rows
         pad = ((0, n - indices.shape[0]), (0, 0))
         indices, weights = np.pad(indices, pad), np.pad(weights, pad)
-    m = n
-    own = np.arange(m, dtype=np.int64)[:, None]
+    own = np.arange(n, dtype=np.int64)[:, None]
     keep = (weights > 0) & (indices != own)  # the diagonal is decided by self_loops only
     if self_loops:
-        keep = np.c_[np.ones(m, dtype=bool), keep]
+        keep = np.c_[np.ones(n, dtype=bool), keep]
         indices = np.c_[own, indices]
-        weights = np.c_[np.ones(m), weights]
+        weights = np.c_[np.ones(n), weights]
     index_dtype = np.int32 if n < 2**31 else np.int64
-    indptr = np.zeros(m + 1, dtype=np.int64)
+    indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(keep.sum(axis=1), out=indptr[1:])
     W = sp.csr_matrix((weights[keep], indices[keep].astype(index_dtype), indptr), shape=(n, n))
     del keep, indices, weights
