@@ -8,7 +8,7 @@ from sklearn.utils.validation import check_array, check_is_fitted
 
 from eigenstream.core.extension import extend_rows
 from eigenstream.core.graph import alpha_normalize, symmetric_affinity
-from eigenstream.core.harmonics import choose_coordinates, harmonic_residuals
+from eigenstream.core.harmonics import keep_coordinates
 from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
 from eigenstream.core.neighbors import approximate_knn, exact_knn
 from eigenstream.core.spectral import solve_embedding
@@ -133,11 +133,8 @@ class SpectralMap(TransformerMixin, BaseEstimator):
         self.radius_ = dist[:, k - 1]
         self.q_ = norm.q
         self.degrees_ = norm.degrees
-        kept, self.candidate_harmonic_residuals_ = np.arange(self.n_components), None
-        if self.choose_from:
-            r = harmonic_residuals(emb.psi, seed=self.random_state)
-            kept = choose_coordinates(r, self.n_components)
-            self.candidate_harmonic_residuals_ = r.tolist()
+        kept, self.candidate_harmonic_residuals_ = keep_coordinates(
+            emb.psi, self.n_components, self.choose_from, seed=self.random_state)
         self.eigenvectors_kept_ = [int(i) + 1 for i in kept]
         self.psi_ = emb.psi[:, kept]
         self.eigenvalues_ = emb.eigenvalues[kept]

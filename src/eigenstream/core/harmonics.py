@@ -114,6 +114,34 @@ def choose_coordinates(residuals: np.ndarray, count: int) -> np.ndarray:
     return np.sort(np.concatenate(([0], others))).astype(np.intp)
 
 
+def keep_coordinates(
+    vectors: np.ndarray, count: int, choose_from: int, *, seed: int = 0
+) -> tuple[np.ndarray, list[float] | None]:
+    """The columns of ``vectors`` that become map coordinates, and the residuals behind them.
+
+    Parameters
+    ----------
+    vectors : ndarray, shape (n, m)
+        Non-trivial eigenvectors in eigenvalue order.
+    count : int
+        Coordinates wanted.
+    choose_from : int
+        0: the leading ``count`` columns (no residuals). Otherwise ``vectors`` holds the leading
+        ``choose_from`` and the kept ones are :func:`choose_coordinates` of
+        :func:`harmonic_residuals` (sample drawn with ``seed``).
+
+    Returns
+    -------
+    kept : ndarray of int
+        Ascending column indices.
+    residuals : list of float or None
+    """
+    if not choose_from:
+        return np.arange(count), None
+    residuals = harmonic_residuals(vectors, seed=seed)
+    return choose_coordinates(residuals, count), residuals.tolist()
+
+
 def _checked_columns(vectors: np.ndarray) -> np.ndarray:
     """``vectors`` as a float64 (n, m) array, n >= 2, all finite."""
     phi = np.asarray(vectors, dtype=np.float64)

@@ -24,7 +24,7 @@ import numpy as np
 from eigenstream import budget
 from eigenstream.checkpoint import STOP
 from eigenstream.core.amg_lobpcg import BlockState
-from eigenstream.core.harmonics import choose_coordinates, harmonic_residuals
+from eigenstream.core.harmonics import keep_coordinates
 from eigenstream.core.lanczos import LanczosState
 from eigenstream.core.spectral import choose_solver, solve_embedding
 from eigenstream.io import store
@@ -114,15 +114,16 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
     clear_checkpoint(ctx)
     kept, candidate_residuals = choose(emb, config)
     out = ctx.store(mode="w")
-    store.write_small(out, "eigenvalues", emb.eigenvalues[kept])
-    store.write_small(out, "residuals", emb.residuals[kept])
+    values, residuals = emb.eigenvalues[kept], emb.residuals[kept]
+    store.write_small(out, "eigenvalues", values)
+    store.write_small(out, "residuals", residuals)
     vectors = emb.psi[:, kept]
     psi = store.create_array(out, "psi", shape=vectors.shape, chunk_rows=config.run.chunk_rows,
                              dtype=np.float64)
     psi[...] = vectors
     return {
-        "eigenvalues": emb.eigenvalues[kept].tolist(),
-        "residuals": emb.residuals[kept].tolist(),
+        "eigenvalues": values.tolist(),
+        "residuals": residuals.tolist(),
         "eigenvectors_kept": [int(i) + 1 for i in kept],
         "candidate_harmonic_residuals": candidate_residuals,
         "candidate_eigenvalues": emb.eigenvalues.tolist() if candidate_residuals else None,
@@ -137,23 +138,15 @@ def _solve(ctx: StageContext, K, scale, degrees, solver: str) -> dict[str, Any]:
 
 
 def choose(emb, config) -> tuple[np.ndarray, list[float] | None]:
-    """Which of the solved eigenvectors become coordinates, and the residuals behind the choice.
-
-    With ``[embedding] choose_from = 0`` the leading ``components`` (no residuals); else the
-    ``components`` that local linear regression finds least explained by the eigenvectors
-    before them (:mod:`eigenstream.core.harmonics`), in eigenvalue order. Indices count the
-    non-trivial eigenvectors from 0.
-    """
-    count = config.embedding.components
-    if not config.embedding.choose_from:
-        return np.arange(count), None
+    """Which of the solved eigenvectors become coordinates (``core.harmonics.keep_coordinates``)."""
     t = time.perf_counter()
-    residuals = harmonic_residuals(emb.psi, seed=config.run.seed)
-    kept = choose_coordinates(residuals, count)
-    log.info("solve: kept eigenvectors %s of %d (local linear regression residuals %s; %.1f s)",
-             [int(i) + 1 for i in kept], emb.psi.shape[1],
-             " ".join(f"{r:.2f}" for r in residuals), time.perf_counter() - t)
-    return kept, [float(r) for r in residuals]
+    kept, residuals = keep_coordinates(emb.psi, config.embedding.components,
+                                       config.embedding.choose_from, seed=config.run.seed)
+    if residuals is not None:
+        log.info("solve: kept eigenvectors %s of %d (local linear regression residuals %s; "
+                 "%.1f s)", [int(i) + 1 for i in kept], emb.psi.shape[1],
+                 " ".join(f"{r:.2f}" for r in residuals), time.perf_counter() - t)
+    return kept, residuals
 
 
 def _position(state) -> int | None:
