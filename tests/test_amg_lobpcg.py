@@ -1,5 +1,7 @@
 """LOBPCG + algebraic multigrid against analytic spectra, scipy's eigsh and our Lanczos."""
 
+import weakref
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -10,6 +12,8 @@ from eigenstream.core.amg_lobpcg import (
     amg_lobpcg,
     locality_order,
     normalized_laplacian,
+    order_laplacian,
+    ordered_laplacian,
     permuted,
 )
 from eigenstream.core.graph import alpha_normalize, symmetric_affinity
@@ -157,3 +161,65 @@ def test_locality_order_gives_a_shuffled_path_its_band_back():
     assert np.max(np.abs(rows - cols)) == 1
     assert (P != L[perm][:, perm]).nnz == 0
     assert P.has_sorted_indices
+
+
+def _with_and_without_diagonal():
+    K = _digits_kernel()
+    without = K.tolil()
+    without.setdiag(0)
+    without = without.tocsr()
+    without.eliminate_zeros()
+    return [K, without, K.astype(np.float32)]
+
+
+@pytest.mark.parametrize("case", [0, 1, 2], ids=["diagonal stored", "no diagonal", "float32"])
+def test_ordered_laplacian_equals_scipy_reordering(case):
+    # Reference: scipy's own fancy indexing and sparse arithmetic, P (I - sKs + shift I) P^T.
+    # Case 0 adds the diagonal in place (the union graph stores it), case 1 needs the fallback
+    # that adds a new diagonal, case 2 starts from a float32 kernel.
+    K = _with_and_without_diagonal()[case]
+    g = alpha_normalize(K.astype(np.float64), 1.0)
+    ordered = ordered_laplacian(K, g.scale, shift=1e-5)
+    L = normalized_laplacian(K.astype(np.float64), g.scale)
+    p = ordered.perm
+    reference = (L + 1e-5 * sp.identity(K.shape[0]))[p][:, p].tocsr()
+    assert ordered.matrix.dtype == np.float64 and ordered.matrix.has_canonical_format
+    assert abs(ordered.matrix - reference).max() < 1e-15
+    np.testing.assert_array_equal(ordered.perm[ordered.inv], np.arange(K.shape[0]))
+    # A x from the ordered copy equals diag(s) K diag(s) x in the caller's order.
+    X = np.random.default_rng(0).standard_normal((K.shape[0], 3))
+    s = g.scale[:, None]
+    np.testing.assert_allclose(ordered.affinity_times(X), s * (K.astype(np.float64) @ (s * X)),
+                               rtol=0, atol=1e-13)
+    # The same from a given Laplacian.
+    again = order_laplacian(L, shift=1e-5)
+    assert abs(again.matrix - reference).max() < 1e-15
+
+
+def test_lobpcg_solve_lets_a_handed_over_kernel_go_before_iterating():
+    # Memory claim of solve_embedding: after building the ordered Laplacian it keeps no
+    # reference to K, so a kernel passed inline (as the solve stage does) is freed before the
+    # iteration. Checked with a weak reference from inside the round callback.
+    K = _digits_kernel()
+    g = alpha_normalize(K, 1.0)
+    alive = []
+    refs = []
+
+    def handed_over():
+        matrix = K.copy()
+        refs.append(weakref.ref(matrix))
+        return matrix
+
+    solve_embedding(handed_over(), g.scale, g.degrees, components=4, diffusion_time=1.0,
+                    tol=1e-11, solver="lobpcg", seed=0,
+                    on_restart=lambda state: alive.append(refs[0]() is not None))
+    assert alive, "the solve should need more than one round at this tolerance"
+    assert not any(alive)
+    # Control: a kernel the caller keeps stays alive, so the probe can see a live matrix.
+    kept = K.copy()
+    probe = weakref.ref(kept)
+    alive.clear()
+    solve_embedding(kept, g.scale, g.degrees, components=4, diffusion_time=1.0, tol=1e-11,
+                    solver="lobpcg", seed=0,
+                    on_restart=lambda state: alive.append(probe() is not None))
+    assert alive and all(alive)

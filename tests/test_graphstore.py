@@ -25,3 +25,16 @@ def test_streamed_and_in_memory_products_equal_scipy(tmp_path, rng):
     assert streamed.passes == 2
     assert (streamed.to_scipy() != K).nnz == 0
     assert (streamed.row_block(100, 140) != K[100:140]).nnz == 0
+
+
+def test_take_hands_the_matrix_over_and_products_then_stream(tmp_path, rng):
+    # Reference: scipy.sparse CSR product on the same matrix.
+    A = sp.random(311, 311, density=0.03, random_state=2, format="csr")
+    K = (A + A.T).tocsr()
+    write_csr(store.open_group(tmp_path / "g.zarr", mode="w"), K)
+    stored = StoredCSR(tmp_path / "g.zarr", block_rows=50)
+    taken = stored.take()
+    assert (taken != K).nnz == 0
+    assert stored.to_scipy() is not taken  # no reference kept: a fresh read from disk
+    x = rng.standard_normal(311)
+    assert np.allclose(stored.matvec(x), K @ x, rtol=0, atol=1e-12)

@@ -27,7 +27,7 @@ from typing import Any
 
 from tqdm.auto import tqdm
 
-from eigenstream import __version__
+from eigenstream import __version__, allocator
 from eigenstream.checkpoint import STOP, stop_on_signals, verified_blocks
 from eigenstream.config import Config, coerce_config
 from eigenstream.errors import CheckpointError, EigenstreamError
@@ -419,7 +419,7 @@ def _execute(workdir: Workdir, config: Config, show_progress: bool, verify_all: 
     from eigenstream.cluster import make_client
     from eigenstream.warmup import compile_ahead
 
-    with _run_record(workdir, config) as record:
+    with _run_record(workdir, config) as record, allocator.returning_memory():
         timings: dict[str, float] = {}
         fingerprints: dict[str, str] = {}
         summaries: dict[str, dict[str, Any]] = {}
@@ -443,6 +443,7 @@ def _execute(workdir: Workdir, config: Config, show_progress: bool, verify_all: 
                     summaries[stage.name], timings[stage.name] = _run_stage(
                         stage, ctx, depends, state
                     )
+                allocator.after_stage()
         record.update(
             state="complete",
             finished=time.time(),

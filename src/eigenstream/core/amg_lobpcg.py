@@ -22,6 +22,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator, lobpcg
 
+from eigenstream.allocator import reusing
 from eigenstream.errors import NotConverged
 
 # Shift making the hierarchy of the singular L non-singular (the value scikit-learn uses too).
@@ -31,6 +32,8 @@ _SHIFT = 1e-5
 ROUND_STEPS = 10
 # Coarsest level solved densely.
 _MAX_COARSE = 500
+# Temporaries up to this many float64 vectors reuse heap memory during the multigrid setup.
+_SETUP_REUSE_VECTORS = 4
 
 
 @dataclass(frozen=True)
@@ -86,6 +89,96 @@ def normalized_laplacian(K: sp.spmatrix, scale: np.ndarray) -> sp.csr_matrix:
     return (minus_A + sp.identity(K.shape[0], format="csr")).tocsr()
 
 
+@dataclass(frozen=True)
+class OrderedLaplacian:
+    """The normalized Laplacian, shifted and in a bandwidth-reducing order.
+
+    ``matrix`` is S = P (L + shift I) P^T: row i of S is row ``perm[i]`` of L. The one matrix
+    serves both the multigrid hierarchy (built on L + shift I) and the products with L
+    (S x - shift x), so a solve holds a single copy of the graph.
+
+    Attributes
+    ----------
+    matrix : csr_matrix, shape (n, n), float64
+    perm, inv : ndarrays of int64, shape (n,)
+        The order and its inverse.
+    shift : float
+    """
+
+    matrix: sp.csr_matrix
+    perm: np.ndarray
+    inv: np.ndarray
+    shift: float
+
+    @property
+    def n(self) -> int:
+        return self.matrix.shape[0]
+
+    def laplacian_times(self, X: np.ndarray) -> np.ndarray:
+        """P L P^T X, for X in the ordered basis."""
+        return self.matrix @ X - self.shift * X
+
+    def affinity_times(self, X: np.ndarray) -> np.ndarray:
+        """A X = X - L X, for X (n,) or (n, b) in the original order."""
+        X = np.asarray(X, dtype=np.float64)
+        return X - self.laplacian_times(X[self.perm])[self.inv]
+
+
+def ordered_laplacian(K: sp.spmatrix, scale: np.ndarray, *,
+                      shift: float = _SHIFT) -> OrderedLaplacian:
+    """S = P ((1 + shift) I - diag(scale) K diag(scale)) P^T straight from the kernel.
+
+    One copy of K is made (reordered, then scaled and shifted in place, row block by row
+    block), so once the caller lets K go only S remains.
+    """
+    K = sp.csr_matrix(K)
+    perm = locality_order(K)
+    inv = np.argsort(perm)
+    S = permuted(K, perm, inv)
+    s = np.asarray(scale, dtype=np.float64)[perm]
+    for r0, r1, p0, p1 in _row_blocks(S):
+        rows = np.repeat(s[r0:r1], np.diff(S.indptr[r0 : r1 + 1]))
+        block = S.data[p0:p1]
+        block *= rows
+        block *= s[S.indices[p0:p1]]
+        np.negative(block, out=block)
+    return OrderedLaplacian(_add_to_diagonal(S, 1.0 + shift), perm, inv, shift)
+
+
+def order_laplacian(L: sp.spmatrix, *, shift: float = _SHIFT) -> OrderedLaplacian:
+    """:class:`OrderedLaplacian` of a given normalized Laplacian ``L``."""
+    L = sp.csr_matrix(L)
+    perm = locality_order(L)
+    inv = np.argsort(perm)
+    return OrderedLaplacian(_add_to_diagonal(permuted(L, perm, inv), shift), perm, inv, shift)
+
+
+# Rows per block of the in-place passes over a matrix (bounds their index scratch).
+_PASS_ROWS = 1 << 16
+
+
+def _row_blocks(M: sp.csr_matrix):
+    """(first row, end row, first stored entry, end entry) of consecutive row blocks."""
+    n = M.shape[0]
+    for r0 in range(0, n, _PASS_ROWS):
+        r1 = min(n, r0 + _PASS_ROWS)
+        yield r0, r1, int(M.indptr[r0]), int(M.indptr[r1])
+
+
+def _add_to_diagonal(M: sp.csr_matrix, value: float) -> sp.csr_matrix:
+    """M + value I: in place when every diagonal entry is stored once, else a new matrix."""
+    n = M.shape[0]
+    where = np.full(n, -1, dtype=np.int64)
+    for r0, r1, p0, p1 in _row_blocks(M):
+        rows = np.repeat(np.arange(r0, r1), np.diff(M.indptr[r0 : r1 + 1]))
+        hits = np.flatnonzero(M.indices[p0:p1] == rows)
+        where[rows[hits]] = hits + p0
+    if np.all(where >= 0) and M.has_canonical_format:
+        M.data[where] += value
+        return M
+    return (M + value * sp.identity(n, format="csr")).tocsr()
+
+
 def locality_order(L: sp.csr_matrix) -> np.ndarray:
     """A row order that keeps each row's non-zeros near the diagonal.
 
@@ -98,27 +191,34 @@ def locality_order(L: sp.csr_matrix) -> np.ndarray:
 
 
 def permuted(L: sp.csr_matrix, perm: np.ndarray, inv: np.ndarray) -> sp.csr_matrix:
-    """P L P^T for the order ``perm`` (``inv`` its inverse): rows gathered, columns renamed."""
+    """P L P^T (float64) for the order ``perm`` (``inv`` its inverse).
+
+    Rows are gathered (the one copy), then columns renamed and sorted in place.
+    """
     out = sp.csr_matrix(L)[perm]
-    out.indices = inv[out.indices].astype(out.indices.dtype, copy=False)
+    if out.dtype != np.float64:
+        out = out.astype(np.float64)
+    indices = out.indices
+    inv = inv.astype(indices.dtype, copy=False)
+    for _, _, p0, p1 in _row_blocks(out):
+        indices[p0:p1] = inv[indices[p0:p1]]
     out.has_sorted_indices = False
     out.sort_indices()
     return out
 
 
-def amg_preconditioner(L: sp.csr_matrix, trivial: np.ndarray) -> LinearOperator:
-    """One smoothed-aggregation V-cycle for L + 1e-5 I, as a LinearOperator.
+def amg_preconditioner(shifted: sp.csr_matrix, trivial: np.ndarray) -> LinearOperator:
+    """One smoothed-aggregation V-cycle for ``shifted`` = L + shift I, as a LinearOperator.
 
     Parameters
     ----------
-    L : csr_matrix, shape (n, n)
-        The normalized Laplacian.
+    shifted : csr_matrix, shape (n, n)
+        The normalized Laplacian plus a small multiple of I (L itself is singular).
     trivial : ndarray, shape (n,)
         Its null vector sqrt(d) (the near-null-space candidate of the aggregation).
     """
     import pyamg  # heavy import, only for this solver
 
-    shifted = (L + _SHIFT * sp.identity(L.shape[0], format="csr")).tocsr()
     hierarchy = pyamg.smoothed_aggregation_solver(
         shifted, B=np.asarray(trivial, dtype=np.float64).reshape(-1, 1), max_coarse=_MAX_COARSE
     )
@@ -126,7 +226,7 @@ def amg_preconditioner(L: sp.csr_matrix, trivial: np.ndarray) -> LinearOperator:
 
 
 def amg_lobpcg(
-    L: sp.csr_matrix,
+    L: sp.csr_matrix | OrderedLaplacian,
     trivial: np.ndarray,
     count: int,
     *,
@@ -141,8 +241,9 @@ def amg_lobpcg(
 
     Parameters
     ----------
-    L : csr_matrix, shape (n, n)
-        Normalized Laplacian I - A of a connected graph (see :func:`normalized_laplacian`).
+    L : csr_matrix or OrderedLaplacian, shape (n, n)
+        Normalized Laplacian I - A of a connected graph (see :func:`normalized_laplacian`),
+        or the same prepared by :func:`ordered_laplacian` (no further copy is made).
     trivial : ndarray, shape (n,)
         sqrt(d): the eigenvector of A for eigenvalue 1, returned first.
     count : int
@@ -171,7 +272,9 @@ def amg_lobpcg(
     NotConverged
         When the budget runs out, with the best pairs found.
     """
-    n = L.shape[0]
+    ordered = L if isinstance(L, OrderedLaplacian) else order_laplacian(L)
+    del L  # an ordered copy replaces a given Laplacian
+    n = ordered.n
     b = count - 1
     if b < 1 or 5 * (b + 1) >= n:
         raise ValueError(f"count must be in [2, {n // 5 - 1}] for {n} rows; got {count}.")
@@ -180,17 +283,15 @@ def amg_lobpcg(
     if state is None:
         gen = np.random.default_rng(0 if rng is None else rng)
         state = BlockState(block=gen.standard_normal((n, b)))
-    # Work in a bandwidth-reducing order: rows of sampled data come in random order, and the
+    # Work in the bandwidth-reducing order: rows of sampled data come in random order, and the
     # products' scattered reads of x then miss the cache (4M rows: 5x slower V-cycles).
     # States and results stay in the caller's order.
-    perm = locality_order(L)
-    inv = np.argsort(perm)
-    L = permuted(L, perm, inv)
+    perm, inv = ordered.perm, ordered.inv
     if apply is not None:
         caller_apply = apply
-        apply_A = lambda X: caller_apply(X[inv])[perm]  # noqa: E731
+        times_L = lambda X: X - caller_apply(X[inv])[perm]  # noqa: E731
     else:
-        apply_A = lambda X: X - L @ X  # noqa: E731
+        times_L = ordered.laplacian_times
     counter = {"matvecs": state.matvecs, "passes": state.passes}
 
     def laplacian(X):
@@ -198,22 +299,17 @@ def amg_lobpcg(
         X2 = X.reshape(n, -1)
         counter["passes"] += 1
         counter["matvecs"] += X2.shape[1]
-        return (X2 - apply_A(X2)).reshape(X.shape)
+        return times_L(X2).reshape(X.shape)
 
     op = LinearOperator((n, n), matvec=laplacian, matmat=laplacian, dtype=np.float64)
-    M = amg_preconditioner(L, u0[perm])
+    # The setup iterates on vectors (from the heap) next to matrices the size of the graph
+    # (mapped, so their memory goes back when the setup frees them).
+    with reusing(up_to=_SETUP_REUSE_VECTORS * 8 * n):
+        M = amg_preconditioner(ordered.matrix, u0[perm])
     Y = u0[perm].reshape(-1, 1)
-    block = state.block[perm]
-    while True:
-        values, block, residuals, steps = _round(op, block, M, Y, tol)
-        state = BlockState(block=block[inv], rounds=state.rounds + 1,
-                           steps=state.steps + steps, **counter)
-        if np.all(residuals <= tol):
-            break
-        if counter["matvecs"] >= max_matvecs:
-            raise _not_converged(values, block[inv], u0, residuals, counter["matvecs"], tol)
-        if on_round is not None:
-            on_round(state)
+    with reusing():  # every step allocates and frees the same blocks
+        state, values, residuals = _iterate(op, state, M, Y, tol, perm, inv, counter,
+                                            max_matvecs, u0, on_round)
     block = state.block
     order = np.argsort(values)
     vals = np.concatenate([[1.0], 1.0 - values[order]])
@@ -221,6 +317,21 @@ def amg_lobpcg(
     return BlockResult(values=vals, vectors=vecs, matvecs=counter["matvecs"],
                        passes=counter["passes"], steps=state.steps,
                        residuals=np.concatenate([[0.0], residuals[order]]))
+
+
+def _iterate(op, state, M, Y, tol, perm, inv, counter, max_matvecs, u0, on_round):
+    """Rounds from ``state`` until every pair converges; the last state, values, residuals."""
+    block = state.block[perm]
+    while True:
+        values, block, residuals, steps = _round(op, block, M, Y, tol)
+        state = BlockState(block=block[inv], rounds=state.rounds + 1,
+                           steps=state.steps + steps, **counter)
+        if np.all(residuals <= tol):
+            return state, values, residuals
+        if counter["matvecs"] >= max_matvecs:
+            raise _not_converged(values, block[inv], u0, residuals, counter["matvecs"], tol)
+        if on_round is not None:
+            on_round(state)
 
 
 def _round(op, block, M, Y, tol):

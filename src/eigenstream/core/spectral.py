@@ -16,6 +16,7 @@ import scipy.linalg
 import scipy.sparse
 from scipy.sparse.linalg import ArpackNoConvergence, LinearOperator, aslinearoperator, eigsh
 
+from eigenstream.allocator import reusing
 from eigenstream.errors import EigenstreamWarning, NotConverged
 
 # Pairs requested beyond components + 1: a cut through a near-degenerate cluster converges slowly.
@@ -454,7 +455,9 @@ def solve_embedding(
     Parameters
     ----------
     K_or_matvec : sparse matrix, ndarray or callable
-        The symmetric kernel K (not normalized), or a function applying it.
+        The symmetric kernel K (not normalized), or a function applying it. The LOBPCG
+        path keeps no reference to K after it has built the Laplacian, so a matrix passed
+        inline (not kept by the caller) is freed before the iteration.
     scale, degrees : ndarrays, shape (n,)
         ``NormalizedGraph.scale`` and ``NormalizedGraph.degrees``.
     components : int
@@ -495,12 +498,17 @@ def solve_embedding(
     solver = choose_solver(solver, n, matrix_in_memory=scipy.sparse.issparse(K_or_matvec))
     passes = steps = 0
     if solver == "lobpcg":
-        from eigenstream.core.amg_lobpcg import amg_lobpcg, normalized_laplacian
+        from eigenstream.core.amg_lobpcg import amg_lobpcg, ordered_laplacian
 
         if not scipy.sparse.issparse(K_or_matvec):
             raise ValueError("solver 'lobpcg' needs the kernel as a sparse matrix.")
+        laplacian = ordered_laplacian(K_or_matvec, scale)
+        # From here on only the Laplacian is used: a K handed over inline is freed now.
+        del K_or_matvec
+        op = LinearOperator((n, n), matvec=laplacian.affinity_times,
+                            matmat=laplacian.affinity_times, dtype=np.float64)
         block = amg_lobpcg(
-            normalized_laplacian(K_or_matvec, scale), sqrt_d, count, tol=tol,
+            laplacian, sqrt_d, count, tol=tol,
             max_matvecs=max_matvecs, rng=seed, state=state, on_round=on_restart,
         )
         result = SpectralResult(values=block.values, vectors=block.vectors,
@@ -509,10 +517,11 @@ def solve_embedding(
     elif solver == "lanczos":
         from eigenstream.core.lanczos import thick_restart_lanczos
 
-        result = thick_restart_lanczos(
-            op.matvec, n, count, v0=v0, tol=tol, max_matvecs=max_matvecs, state=state,
-            on_restart=on_restart, rng=seed, check_multiplicity=check_multiplicity,
-        )
+        with reusing():
+            result = thick_restart_lanczos(
+                op.matvec, n, count, v0=v0, tol=tol, max_matvecs=max_matvecs, state=state,
+                on_restart=on_restart, rng=seed, check_multiplicity=check_multiplicity,
+            )
     elif solver == "arpack":
         result = leading_eigenpairs(
             op, count, v0=v0, tol=tol, max_matvecs=max_matvecs, rng=seed,

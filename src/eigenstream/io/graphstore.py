@@ -93,3 +93,12 @@ class StoredCSR:
     def to_scipy(self) -> sp.csr_matrix:
         """The whole matrix in memory."""
         return self._matrix if self._matrix is not None else self._load()
+
+    def take(self) -> sp.csr_matrix:
+        """The whole matrix in memory, handed over: this object keeps no reference to it.
+
+        Lets a consumer that turns K into something else free K early; later products here
+        read the matrix from disk.
+        """
+        matrix, self._matrix = self.to_scipy(), None
+        return matrix

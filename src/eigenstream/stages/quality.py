@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from eigenstream.allocator import reusing
 from eigenstream.core.harmonics import harmonic_residuals
 from eigenstream.core.neighbors import knn_recall, nearest_in_blocks
 from eigenstream.core.quality import continuity, eigengap, trustworthiness
@@ -26,6 +27,8 @@ MAP_ROWS = 20_000
 QUALITY_NEIGHBORS = 10
 # Graph rows read at a time for the exact neighbours of the recall sample.
 RECALL_BLOCK_ROWS = 100_000
+# Scratch of the recall search that reuses heap memory from block to block.
+RECALL_REUSE_BYTES = 64 << 20
 
 # name -> (threshold, direction, what a breach means); "min": value must be >= threshold.
 THRESHOLDS: dict[str, tuple[float, str, str]] = {
@@ -129,8 +132,9 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     with ctx.progress(4, "checks") as bar:
         method = ctx.upstream.get("neighbors", {}).get("method", "exact")
         stored = np.asarray(knn["indices"].get_orthogonal_selection((rows, slice(None))))
-        recall = recall_on_sample(graph.load_rows(rows), _graph_blocks(graph), stored, method,
-                                  rows, config.graph.metric)
+        with reusing(up_to=RECALL_REUSE_BYTES):  # the same scratch for every block
+            recall = recall_on_sample(graph.load_rows(rows), _graph_blocks(graph), stored,
+                                      method, rows, config.graph.metric)
         bar.update(1)
         trust = trustworthiness(data, coords, n_neighbors=k, sample=sample, rng=rng)
         bar.update(1)
