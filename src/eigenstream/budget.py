@@ -275,7 +275,15 @@ def driver_graph_bytes(config: Config) -> int:
 
 
 def estimate(config: Config, n_rows: int, n_columns: int) -> dict[str, int]:
-    """Peak bytes of each part of a run with ``n_rows`` x ``n_columns`` input.
+    """Peak bytes of each stage's work in a run with ``n_rows`` x ``n_columns`` input.
+
+    The graph stages run one after another and their memory goes back to the system between
+    them (``eigenstream.allocator``), so a run needs the largest of them plus a row block
+    (:func:`check`). Measured on the bench sheet (D = 50, k = 15, a 16 GiB limit; resident
+    memory of the process minus the ~300 MiB it holds between stages), against the largest
+    modelled stage: 200k rows 0.20-0.23 GiB against 0.41, 1M rows 1.05 against 2.07, 4M rows
+    4.45 against 8.29 (the eigensolver's part, which counts the union's upper bound of
+    2k + 1 entries per row; the bench graph has 17.7).
 
     Raises
     ------
@@ -291,11 +299,21 @@ def estimate(config: Config, n_rows: int, n_columns: int) -> dict[str, int]:
         chunk = derived_chunk_rows(config, n_rows, n_columns)[0]
     block = min(chunk, n_rows)
     basis = max(2 * (c + 3) + 10, 30)
+    union_bound = graph_rows * (2 * k + 1)  # stored entries of the symmetric graph, at most
+    from eigenstream.stages.neighbors import choose_method
+    from eigenstream.stages.solve import LOBPCG_BYTES_PER_NONZERO
+
+    # exact search: two float64 copies of the rows; NN-descent: the table as read
+    value_bytes = (16 if choose_method(config, graph_rows) == "exact"
+                   else {"float32": 4, "float64": 8}[config.run.dtype])
     return {
-        "graph features": graph_rows * dim * 8 * 2,
-        "neighbour search": graph_rows * k * (16 + 40),
-        "affinity (CSR build)": graph_rows * k * 2 * 24 * 2,
-        "eigensolver basis": graph_rows * basis * 8,
+        # the rows, and the search's lists and candidate buffers
+        "neighbour search": graph_rows * dim * value_bytes + graph_rows * k * (16 + 40),
+        # the lists as read, and the union's W, its transpose and the result
+        "affinity (CSR build)": graph_rows * k * 16 + graph_rows * k * 2 * 24 * 2,
+        # the graph is kept only within driver_graph_bytes, else streamed from disk
+        "eigensolver": min(union_bound * LOBPCG_BYTES_PER_NONZERO, driver_graph_bytes(config))
+        + graph_rows * basis * 8,
         # a block of rows, its coordinates and (landmark mode) its candidate lists
         "row block": block * row_bytes(config, n_columns)
         + block_scratch_bytes(config, n_rows, block, n_columns),
@@ -308,7 +326,7 @@ def check(config: Config, n_rows: int, n_columns: int) -> None:
     limit = memory_bytes(config.run.memory_limit)
     if limit is None:
         return
-    graph = sum(v for name, v in parts.items() if name != "row block")
+    graph = max(v for name, v in parts.items() if name != "row block")
     need = graph + parts["row block"]
     if need <= limit:
         return
