@@ -50,6 +50,7 @@ def _run(ctx: StageContext) -> dict[str, Any]:
     with ctx.progress(4, "steps") as bar:
         sigma = bandwidths(distances, config.kernel, config.input.path)
         weights = gaussian_weights(distances, sigma, sigma[indices])
+        del distances  # not needed from here; the union build is the stage's peak
         bar.update(1)
         K = symmetric_affinity(indices, weights, n, self_loops=True)
         del weights
