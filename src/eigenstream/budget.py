@@ -281,7 +281,7 @@ def estimate(config: Config, n_rows: int, n_columns: int) -> dict[str, int]:
     them (``eigenstream.allocator``), so a run needs the largest of them plus a row block
     (:func:`check`). Measured on the bench sheet (D = 50, k = 15, a 16 GiB limit; resident
     memory of the process minus the ~300 MiB it holds between stages), against the largest
-    modelled stage: 200k rows 0.20-0.23 GiB against 0.41, 1M rows 1.05 against 2.07, 4M rows
+    modelled stage: 200k rows 0.20-0.23 GiB against 0.41, 1M rows 1.02 against 2.07, 4M rows
     4.45 against 8.29 (the eigensolver's part, which counts the union's upper bound of
     2k + 1 entries per row; the bench graph has 17.7).
 
