@@ -56,10 +56,11 @@ def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int,
     compiled = warmup.warm_worker(spec.metric, n_jobs=n_jobs)
     data = spec.load()
     idx, dist = approximate_knn(data, k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
+    del data  # the rows are not needed for writing the lists
     out = store.open_group(out_path, mode="r+")
     out["indices"][...] = idx
     out["distances"][...] = spec.distances_to_input_units(dist)
-    return data.shape[0], compiled, n_jobs
+    return idx.shape[0], compiled, n_jobs
 
 
 def _pool_threads(n_jobs: int) -> int:
