@@ -71,3 +71,12 @@ def test_outside_a_run_reusing_changes_nothing():
     with allocator.reusing(up_to=1 * MIB):  # would map 24 MiB blocks if it acted
         assert _left_resident(24 * MIB) > 16 * MIB
     allocator.trim()
+
+
+def test_an_inner_reusing_block_gives_the_outer_threshold_back():
+    allocator._threshold(32 * MIB)
+    with allocator.returning_memory():
+        with allocator.reusing(up_to=64 * MIB):
+            with allocator.reusing(up_to=1 * MIB):  # maps 24 MiB blocks while it lasts
+                assert _left_resident(24 * MIB) < 4 * MIB
+            assert _left_resident(24 * MIB) > 16 * MIB  # the outer block's reuse again

@@ -34,7 +34,9 @@ REUSE_UP_TO = 256 << 20
 _GLIBC_DYNAMIC_MAX = 32 << 20
 
 _lock = threading.Lock()
-_state = {"active": 0, "reusing": 0}
+_state = {"active": 0}
+# Thresholds of the open `reusing` scopes, innermost last.
+_reuse_stack: list[int] = []
 
 
 def _libc():
@@ -91,13 +93,13 @@ def reusing(up_to: int = REUSE_UP_TO) -> Iterator[None]:
     """A loop that reallocates the same temporaries: let those up to ``up_to`` bytes come
     from the heap.
 
-    Does nothing outside :func:`returning_memory`; trims the heap when the outermost
-    ``reusing`` block ends.
+    Does nothing outside :func:`returning_memory`; an inner block's end restores the outer
+    block's threshold, and the outermost block's end trims the heap.
     """
     with _lock:
         active = bool(_state["active"])
         if active:
-            _state["reusing"] += 1
+            _reuse_stack.append(up_to)
             _threshold(up_to)
     if not active:
         yield
@@ -106,10 +108,10 @@ def reusing(up_to: int = REUSE_UP_TO) -> Iterator[None]:
         yield
     finally:
         with _lock:
-            _state["reusing"] -= 1
-            done = not _state["reusing"]
-            if done and _state["active"]:
-                _threshold(RETURN_FROM)
+            _reuse_stack.pop()
+            done = not _reuse_stack
+            if _state["active"]:
+                _threshold(RETURN_FROM if done else _reuse_stack[-1])
         if done:
             trim()
 

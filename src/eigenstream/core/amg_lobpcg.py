@@ -77,18 +77,6 @@ class BlockResult:
     residuals: np.ndarray
 
 
-def normalized_laplacian(K: sp.spmatrix, scale: np.ndarray) -> sp.csr_matrix:
-    """L = I - diag(scale) K diag(scale) as CSR float64."""
-    K = sp.csr_matrix(K)
-    scale = np.asarray(scale, dtype=np.float64)
-    rows = np.repeat(np.arange(K.shape[0]), np.diff(K.indptr))
-    # Scaled in place of two sparse products, which would each copy the matrix.
-    minus_A = sp.csr_matrix((-(scale[rows] * K.data * scale[K.indices]), K.indices, K.indptr),
-                            shape=K.shape)
-    del rows
-    return (minus_A + sp.identity(K.shape[0], format="csr")).tocsr()
-
-
 @dataclass(frozen=True)
 class OrderedLaplacian:
     """The normalized Laplacian, shifted and in a bandwidth-reducing order.
@@ -131,10 +119,7 @@ def ordered_laplacian(K: sp.spmatrix, scale: np.ndarray, *,
     One copy of K is made (reordered, then scaled and shifted in place, row block by row
     block), so once the caller lets K go only S remains.
     """
-    K = sp.csr_matrix(K)
-    perm = locality_order(K)
-    inv = np.argsort(perm)
-    S = permuted(K, perm, inv)
+    S, perm, inv = _in_locality_order(K)
     s = np.asarray(scale, dtype=np.float64)[perm]
     for r0, r1, p0, p1 in _row_blocks(S):
         rows = np.repeat(s[r0:r1], np.diff(S.indptr[r0 : r1 + 1]))
@@ -147,10 +132,16 @@ def ordered_laplacian(K: sp.spmatrix, scale: np.ndarray, *,
 
 def order_laplacian(L: sp.spmatrix, *, shift: float = _SHIFT) -> OrderedLaplacian:
     """:class:`OrderedLaplacian` of a given normalized Laplacian ``L``."""
-    L = sp.csr_matrix(L)
-    perm = locality_order(L)
+    S, perm, inv = _in_locality_order(L)
+    return OrderedLaplacian(_add_to_diagonal(S, shift), perm, inv, shift)
+
+
+def _in_locality_order(M: sp.spmatrix) -> tuple[sp.csr_matrix, np.ndarray, np.ndarray]:
+    """P M P^T (float64, one copy) for the :func:`locality_order` P, the order and its inverse."""
+    M = sp.csr_matrix(M)
+    perm = locality_order(M)
     inv = np.argsort(perm)
-    return OrderedLaplacian(_add_to_diagonal(permuted(L, perm, inv), shift), perm, inv, shift)
+    return permuted(M, perm, inv), perm, inv
 
 
 # Rows per block of the in-place passes over a matrix (bounds their index scratch).
@@ -247,8 +238,8 @@ def amg_lobpcg(
     Parameters
     ----------
     L : csr_matrix or OrderedLaplacian, shape (n, n)
-        Normalized Laplacian I - A of a connected graph (see :func:`normalized_laplacian`),
-        or the same prepared by :func:`ordered_laplacian` (no further copy is made).
+        Normalized Laplacian I - diag(s) K diag(s) of a connected graph, or the same prepared
+        from K by :func:`ordered_laplacian` (no further copy is made).
     trivial : ndarray, shape (n,)
         sqrt(d): the eigenvector of A for eigenvalue 1, returned first.
     count : int
