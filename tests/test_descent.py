@@ -46,6 +46,44 @@ def test_copy_builds_the_same_graph_as_pynndescent(threads, monkeypatch):
     assert np.array_equal(ours_d, ref_d)
 
 
+def test_update_buffers_stay_within_their_bytes_and_pynndescents_block():
+    # Buffer size from pynndescent 0.7.0's nn_descent_internal_high_memory_parallel (copied
+    # into _iterate): per thread (c^2 + c(c-1)/2) * block / threads triples of float32, plus
+    # a sorted copy twice that size.
+    for c in (4, 16, 30, 60):
+        rows = descent.update_block_rows(c)
+        assert 256 <= rows <= descent.PYNNDESCENT_BLOCK_ROWS
+        buffer = 3 * 12 * (c**2 + c * (c - 1) / 2) * rows
+        assert buffer <= descent.UPDATE_BUFFER_BYTES or rows == 256
+    assert descent.update_block_rows(4) == descent.PYNNDESCENT_BLOCK_ROWS  # small c: unchanged
+    assert descent.update_block_rows(16) < 4096  # the 200k bench's k = 15 (c = 16)
+
+
+def test_smaller_update_blocks_find_the_neighbours_as_well(monkeypatch):
+    # Reference: exact neighbours by scikit-learn's NearestNeighbors, and pynndescent's own
+    # build (one 16,384-row block here). Blocks of 256 rows apply the same kind of updates in
+    # more batches, which may change the graph but not its quality.
+    from sklearn.neighbors import NearestNeighbors
+
+    X = _rows(6000, seed=5)
+    exact = NearestNeighbors(n_neighbors=16).fit(X).kneighbors(X, return_distance=False)
+    assert descent.install()
+    monkeypatch.setattr(descent, "UPDATE_BUFFER_BYTES", 1 << 20)
+    assert descent.update_block_rows(16) == 256
+    blocks, compiled = [], descent.descend
+    monkeypatch.setattr(descent, "descend", lambda *a: blocks.append(a[-1]) or compiled(*a))
+    ours, _ = _build(X, 2)
+    monkeypatch.setattr(pynndescent_, "nn_descent", descent._ORIGINAL)
+    ref, _ = _build(X, 2)
+
+    def recall(idx):
+        return np.mean([len(set(a) & set(b)) / 16 for a, b in zip(idx, exact, strict=True)])
+
+    assert blocks == [256]  # the smaller blocks were really used
+    assert recall(ours) >= 0.99
+    assert recall(ours) >= recall(ref) - 0.005
+
+
 def test_other_distances_still_take_pynndescents_own_build(monkeypatch):
     # A distance the copy does not have (manhattan) must reach pynndescent's original with
     # that distance. The original is replaced by a recorder here: compiling it for manhattan

@@ -6,7 +6,8 @@ process compiles the core again (35-60 s of one core on the project's machine). 
 holds a copy of that core (pynndescent 0.7.0, ``pynndescent_.py``: ``nn_descent``,
 ``nn_descent_internal``, ``process_candidates``, ``init_rp_tree``, ``generate_leaf_updates``,
 ``init_random``) in which the distance is the module-level ``squared_euclidean`` and candidate
-updates always take pynndescent's batched squared-Euclidean kernel; everything else (heaps,
+updates always take pynndescent's batched squared-Euclidean kernel, in update blocks sized by
+memory (:func:`update_block_rows`; pynndescent uses 16,384 rows); everything else (heaps,
 candidate building, update sorting, the kernel itself, the random-projection forest and all
 parameter choices of ``NNDescent``) is pynndescent's own, called unchanged. With the distance
 fixed, numba caches the whole compiled core on disk, once per machine.
@@ -66,6 +67,10 @@ from pynndescent.utils import (
 COPIED_FROM = "0.7.0"
 
 _ORIGINAL = pynndescent_.nn_descent
+
+# pynndescent's rows per candidate-update block, and the bytes we allow its update buffers.
+PYNNDESCENT_BLOCK_ROWS = 16384
+UPDATE_BUFFER_BYTES = 48 << 20
 
 
 def _cached(function):
@@ -178,9 +183,8 @@ def _process_candidates(data, current_graph, new_candidate_neighbors, old_candid
 
 @numba.njit(cache=True)
 def _iterate(current_graph, data, n_neighbors, rng_state, max_candidates, n_iters, delta,
-             n_threads):
+             n_threads, block_size):
     n_vertices = data.shape[0]
-    block_size = 16384
     n_blocks = n_vertices // block_size
     max_updates_per_thread = (
         int((max_candidates**2 + max_candidates * (max_candidates - 1) / 2)
@@ -219,7 +223,7 @@ def _iterate(current_graph, data, n_neighbors, rng_state, max_candidates, n_iter
 
 @numba.njit(cache=True)
 def descend(data, n_neighbors, rng_state, max_candidates, n_iters, delta, leaf_array,
-            n_threads):
+            n_threads, block_size=PYNNDESCENT_BLOCK_ROWS):
     """NN-descent from a random-projection forest's leaves, squared Euclidean distance.
 
     Parameters
@@ -238,6 +242,9 @@ def descend(data, n_neighbors, rng_state, max_candidates, n_iters, delta, leaf_a
     n_threads : int
         ``numba.get_num_threads()`` of the caller (the work is split into this many parts;
         reading it inside compiled code would keep numba from caching it).
+    block_size : int
+        Rows whose candidate updates are generated and applied together (pynndescent:
+        16,384); the update buffers grow with it (see :func:`update_block_rows`).
 
     Returns
     -------
@@ -249,8 +256,22 @@ def descend(data, n_neighbors, rng_state, max_candidates, n_iters, delta, leaf_a
     _init_from_leaves(data, current_graph, leaf_array, n_threads)
     _init_random(n_neighbors, data, current_graph, rng_state)
     _iterate(current_graph, data, n_neighbors, rng_state, max_candidates, n_iters, delta,
-             n_threads)
+             n_threads, block_size)
     return deheap_sort(current_graph[0], current_graph[1])
+
+
+def update_block_rows(max_candidates: int) -> int:
+    """Rows per NN-descent update block so that the update buffers stay near 48 MiB.
+
+    The buffers hold ``3 x (c^2 + c(c - 1)/2)`` float32 triples per block row (one update
+    array and its sorted copy, twice its size) for ``c = max_candidates``: 222 MiB at
+    pynndescent's 16,384 rows and c = 16, set once before the first iteration. Smaller blocks
+    only apply the same updates in smaller batches (200k rows, k = 15: stage peak 481 -> 458 MiB,
+    same recall, same search time). Never more than pynndescent's own 16,384 rows.
+    """
+    per_row = 3 * 12 * (max_candidates**2 + max_candidates * (max_candidates - 1) / 2)
+    rows = int(UPDATE_BUFFER_BYTES // max(per_row, 1))
+    return max(256, min(PYNNDESCENT_BLOCK_ROWS, rows))
 
 
 def routed(data, n_neighbors, rng_state, max_candidates=50, dist=squared_euclidean, n_iters=10,
@@ -275,7 +296,7 @@ def routed(data, n_neighbors, rng_state, max_candidates=50, dist=squared_euclide
                          leaf_array=leaf_array, low_memory=low_memory, verbose=verbose,
                          kernel=kernel)
     return descend(data, n_neighbors, rng_state, max_candidates, n_iters, delta, leaf_array,
-                   numba.get_num_threads())
+                   numba.get_num_threads(), update_block_rows(max_candidates))
 
 
 def install() -> bool:
@@ -293,4 +314,4 @@ def install() -> bool:
     return True
 
 
-__all__ = ["COPIED_FROM", "descend", "install", "routed"]
+__all__ = ["COPIED_FROM", "descend", "install", "routed", "update_block_rows"]

@@ -62,6 +62,31 @@ def write_small(group: zarr.Group, name: str, values: np.ndarray) -> zarr.Array:
     return arr
 
 
+# Bytes handed to zarr per call when writing a large array: zarr encodes every chunk of a call
+# at once, so one call holding a whole 24 MiB array kept ~100 MiB more resident (200k x 15 lists).
+WRITE_BLOCK_BYTES = 8 << 20
+
+
+def write_rows(array: zarr.Array, values: np.ndarray, *, start: int = 0,
+               block_bytes: int = WRITE_BLOCK_BYTES) -> None:
+    """Write ``values`` to rows ``start:start + len(values)`` of ``array``, a few chunks per call.
+
+    Each call covers whole chunks of ``array`` (at least one) and at most about
+    ``block_bytes`` of ``values``, so the encoder's scratch stays bounded.
+    """
+    values = np.asarray(values)
+    n = values.shape[0]
+    row_bytes = max(1, values[:1].nbytes)
+    chunk = array.chunks[0]
+    rows = max(chunk, block_bytes // row_bytes // chunk * chunk)
+    stop = start + n
+    s = start
+    while s < stop:
+        e = min(stop, (s // chunk) * chunk + rows)  # blocks end on chunk boundaries
+        array[s:e] = values[s - start:e - start]
+        s = e
+
+
 def read_rows(array: zarr.Array, start: int, stop: int) -> np.ndarray:
     """Rows ``start:stop`` of ``array`` as a numpy array."""
     return np.asarray(array[start:stop])

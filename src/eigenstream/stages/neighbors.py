@@ -58,8 +58,8 @@ def _approximate_all(spec: FeatureSpec, out_path, k, seed, n_jobs) -> tuple[int,
     idx, dist = approximate_knn(data, k, metric=spec.metric, seed=seed, n_jobs=n_jobs)
     del data  # the rows are not needed for writing the lists
     out = store.open_group(out_path, mode="r+")
-    out["indices"][...] = idx
-    out["distances"][...] = spec.distances_to_input_units(dist)
+    store.write_rows(out["indices"], idx)
+    store.write_rows(out["distances"], spec.distances_to_input_units(dist))
     return idx.shape[0], compiled, n_jobs
 
 
