@@ -33,13 +33,14 @@ def _assert_same_lists(idx, dist, ref_idx, ref_dist):
         assert len(set(idx[r])) == k
 
 
+@pytest.mark.parametrize("scratch", [None, 8 * 400 * 3])  # default blocks, 3-row blocks
 @pytest.mark.parametrize("metric", ["euclidean", "cosine"])
-def test_exact_matches_sklearn_brute(metric):
+def test_exact_matches_sklearn_brute(metric, scratch):
     # Reference: scikit-learn NearestNeighbors(algorithm="brute").kneighbors() with no query,
     # which also leaves each point out of its own list by index.
     X = _with_duplicates()
     k = 15
-    idx, dist = exact_knn(X, k, metric=metric)
+    idx, dist = exact_knn(X, k, metric=metric, scratch_bytes=scratch)
     ref_d, ref_i = (
         NearestNeighbors(n_neighbors=k, algorithm="brute", metric=metric).fit(X).kneighbors()
     )

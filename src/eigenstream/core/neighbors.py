@@ -49,9 +49,10 @@ def _finish(d2: np.ndarray, metric: str, zero_q, zero_x) -> np.ndarray:
     return dist
 
 
-def _block_rows(n: int, width: int) -> int:
+def _block_rows(n: int, width: int, scratch_bytes: int | None = None) -> int:
     """Query rows per block so that (block x n) and (block x width) float64 scratch stay small."""
-    return int(max(1, min(4096, _BLOCK_BYTES // (8 * max(n, width, 1)))))
+    budget = _BLOCK_BYTES if scratch_bytes is None else scratch_bytes
+    return int(max(1, min(4096, budget // (8 * max(n, width, 1)))))
 
 
 def exact_knn(
@@ -61,6 +62,7 @@ def exact_knn(
     metric: str = "euclidean",
     query: np.ndarray | None = None,
     query_start: int | None = None,
+    scratch_bytes: int | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Exact k nearest rows of ``data`` for each query row.
 
@@ -77,6 +79,9 @@ def exact_knn(
     query_start : int, optional
         When given, query row ``r`` is data row ``query_start + r`` and is excluded from its
         own list by index. With ``query=None`` it defaults to 0 (self excluded).
+    scratch_bytes : int, optional
+        Bytes of float64 scratch per block of query rows (default 64 MiB); smaller blocks
+        take a little longer.
 
     Returns
     -------
@@ -103,7 +108,7 @@ def exact_knn(
     if query_start is not None and not 0 <= query_start <= n - m:
         raise ValueError(f"query_start={query_start} puts {m} query rows outside {n} data rows.")
     ref = _Reference(feats, zero, metric)
-    block = _block_rows(n, (k + _EXTRA_CANDIDATES) * feats.shape[1])
+    block = _block_rows(n, (k + _EXTRA_CANDIDATES) * feats.shape[1], scratch_bytes)
     out_i = np.empty((m, k), dtype=np.int64)
     out_d = np.empty((m, k), dtype=np.float64)
     for r0 in range(0, m, block):
