@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
+from eigenstream.core import graph
 from eigenstream.core.graph import alpha_normalize, connected_components, symmetric_affinity
 from eigenstream.core.kernels import adaptive_bandwidths, gaussian_weights
 from eigenstream.core.neighbors import exact_knn
@@ -32,6 +33,27 @@ def test_union_rule_and_self_loops():
     K0 = symmetric_affinity(idx, w, n, self_loops=False)
     np.testing.assert_array_equal(K0.toarray(), np.maximum(W, W.T))
     assert K0.diagonal().max() == 0.0
+
+
+@pytest.mark.parametrize("loops", [True, False])
+def test_union_in_row_blocks_equals_the_dense_rule(monkeypatch, loops):
+    # The same dense reference (von Luxburg 2007) with the lists copied 7 rows at a time and
+    # the union taken 11 rows at a time (short last blocks; vertices 150..155 have no list),
+    # and scipy's own whole-matrix maximum(W, W.T) on the directed kernel.
+    idx, w = _knn_kernel()
+    n = idx.shape[0] + 6
+    W = np.zeros((n, n))
+    W[np.repeat(np.arange(idx.shape[0]), idx.shape[1]), idx.ravel()] = w.ravel()
+    monkeypatch.setattr(graph, "_LIST_BLOCK_ROWS", 7)
+    directed = graph.directed_affinity(idx, w, n, self_loops=loops)
+    np.testing.assert_array_equal(directed.toarray(), W + (np.eye(n) if loops else 0))
+    K = graph.union_affinity(directed, block_rows=11)
+    assert K.indices.dtype == np.int64 and K.indptr.dtype == np.int64 and K.has_sorted_indices
+    np.testing.assert_array_equal(K.toarray(), np.maximum(W, W.T) + (np.eye(n) if loops else 0))
+    ref = directed.maximum(directed.T.tocsr()).tocsr()
+    ref.sort_indices()
+    assert np.array_equal(K.indptr, ref.indptr) and np.array_equal(K.indices, ref.indices)
+    assert np.array_equal(K.data, ref.data)
 
 
 def test_union_rule_with_a_neighbour_listed_twice_keeps_the_larger_weight():

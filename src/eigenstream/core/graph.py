@@ -21,6 +21,8 @@ def symmetric_affinity(
     direction is kept with its kernel weight; with a symmetric kernel value this only fills in
     the missing direction. With ``self_loops`` the diagonal is set to 1, the value of the dense
     Gaussian kernel at distance 0 (Coifman & Lafon 2006). Zero weights are not stored.
+    Same as ``union_affinity(directed_affinity(...))``; call those two to let the lists go
+    before the union.
 
     Parameters
     ----------
@@ -37,21 +39,92 @@ def symmetric_affinity(
     -------
     scipy.sparse.csr_matrix, shape (n, n), float64, int64 indices, sorted, no duplicates
     """
+    return union_affinity(directed_affinity(indices, weights, n, self_loops=self_loops))
+
+
+def directed_affinity(
+    indices: np.ndarray, weights: np.ndarray, n: int, *, self_loops: bool = True
+) -> sp.csr_matrix:
+    """The directed kNN kernel W: row i holds the weights of the neighbours listed for i.
+
+    Parameters as in :func:`symmetric_affinity`. A neighbour listed twice keeps its larger
+    weight; the diagonal holds 1 with ``self_loops`` and nothing otherwise.
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix, shape (n, n), float64, sorted, no duplicates (int32 indices
+    below 2**31 rows)
+    """
     indices = np.asarray(indices, dtype=np.int64)
     weights = np.asarray(weights, dtype=np.float64)
     if not _repeats_within_rows(indices):
-        return _union_of_lists(indices, weights, n, self_loops)
+        return _directed_from_lists(indices, weights, n, self_loops)
     rows = np.repeat(np.arange(indices.shape[0], dtype=np.int64), indices.shape[1])
     cols, vals = indices.ravel(), weights.ravel()
     keep = (vals > 0) & (cols != rows)  # the diagonal is decided by self_loops only
     rows, cols, vals = rows[keep], cols[keep], vals[keep]
-    parts_r, parts_c, parts_v = [rows, cols], [cols, rows], [vals, vals]
     if self_loops:
         diag = np.arange(n, dtype=np.int64)
-        parts_r.append(diag)
-        parts_c.append(diag)
-        parts_v.append(np.ones(n))
-    return _csr_max(np.concatenate(parts_r), np.concatenate(parts_c), np.concatenate(parts_v), n)
+        rows, cols, vals = np.r_[rows, diag], np.r_[cols, diag], np.r_[vals, np.ones(n)]
+    return _csr_max(rows, cols, vals, n)
+
+
+# Row blocks of the union: at least this many rows, and at most this many blocks (each block
+# takes one pass over W to cut the matching columns, W^T's rows, out of it).
+UNION_BLOCK_ROWS = 1 << 14
+UNION_MAX_BLOCKS = 16
+
+
+def union_affinity(W: sp.csr_matrix, *, block_rows: int | None = None) -> sp.csr_matrix:
+    """max(W, W^T), combined in row blocks by scipy's sparse maximum.
+
+    W^T is never formed whole: the rows of a block of W^T are the matching column block of
+    W, transposed. Transient memory is W, the result's parts and one block (scipy's maximum()
+    of whole matrices sizes its result for nnz(W) + nnz(W^T) entries next to W and W^T). The
+    result shares no memory with W, so the caller's W can be freed once this returns.
+
+    Parameters
+    ----------
+    W : csr_matrix, shape (n, n)
+    block_rows : int, optional
+        Rows combined per block; default max(16,384, n / 16).
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix, shape (n, n), float64, int64 indices, sorted, no duplicates
+    """
+    W = W.tocsr()
+    W.sort_indices()
+    n = W.shape[0]
+    if block_rows is None:
+        block_rows = max(UNION_BLOCK_ROWS, -(-n // UNION_MAX_BLOCKS))
+    counts = np.zeros(n, dtype=np.int64)
+    parts = []
+    for s in range(0, n, block_rows):
+        e = min(n, s + block_rows)
+        part = W[s:e].maximum(W[:, s:e].T.tocsr())
+        part.sort_indices()
+        counts[s:e] = np.diff(part.indptr)
+        # tight copies: maximum()'s arrays are views of buffers sized for both operands
+        parts.append((part.indices.copy(), part.data.copy()))
+        del part
+    del W
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(counts, out=indptr[1:])
+    indices = np.empty(indptr[-1], dtype=np.int64)
+    data = np.empty(indptr[-1], dtype=np.float64)
+    at = 0
+    parts.reverse()
+    while parts:  # each part goes as soon as it is copied in
+        idx, vals = parts.pop()
+        indices[at:at + idx.size] = idx
+        data[at:at + idx.size] = vals
+        at += idx.size
+    K = sp.csr_matrix((n, n), dtype=np.float64)
+    # Assigned directly: the constructor would downcast the index arrays to int32.
+    K.data, K.indices, K.indptr = data, indices, indptr
+    K.has_sorted_indices = True
+    return K
 
 
 def _repeats_within_rows(indices: np.ndarray) -> bool:
@@ -62,37 +135,52 @@ def _repeats_within_rows(indices: np.ndarray) -> bool:
     return bool(np.any(ordered[:, 1:] == ordered[:, :-1]))
 
 
-def _union_of_lists(indices: np.ndarray, weights: np.ndarray, n: int,
-                    self_loops: bool) -> sp.csr_matrix:
-    """max(W, W^T) (+ I) by scipy's sparse maximum, for lists holding each neighbour once.
+# Rows of the lists copied into W at a time (bounds the block's padded copies to a few MiB).
+_LIST_BLOCK_ROWS = 1 << 14
 
-    W is built row by row straight from the lists (each row's own entries, the diagonal
-    included when ``self_loops``), without the triplet form: the union's transient memory is
-    then W, its transpose and the result.
+
+def _directed_from_lists(indices: np.ndarray, weights: np.ndarray, n: int,
+                         self_loops: bool) -> sp.csr_matrix:
+    """W built from lists holding each neighbour once, in row blocks (no triplet form).
+
+    Memory beyond the lists: W itself, a boolean mask of the lists and one block's copies.
     """
-    if indices.shape[0] < n:  # vertices without a list of their own: empty rows
-        pad = ((0, n - indices.shape[0]), (0, 0))
-        indices, weights = np.pad(indices, pad), np.pad(weights, pad)
-    own = np.arange(n, dtype=np.int64)[:, None]
-    keep = (weights > 0) & (indices != own)  # the diagonal is decided by self_loops only
+    m = indices.shape[0]  # rows m..n-1 have no list of their own: empty rows (or the diagonal)
+    keep = np.empty(indices.shape, dtype=bool)
+    for s, e in _blocks(m, _LIST_BLOCK_ROWS):
+        own = np.arange(s, e, dtype=np.int64)[:, None]
+        # the diagonal is decided by self_loops only
+        keep[s:e] = (weights[s:e] > 0) & (indices[s:e] != own)
+    counts = np.zeros(n, dtype=np.int64)
+    counts[:m] = keep.sum(axis=1)
     if self_loops:
-        keep = np.c_[np.ones(n, dtype=bool), keep]
-        indices = np.c_[own, indices]
-        weights = np.c_[np.ones(n), weights]
-    index_dtype = np.int32 if n < 2**31 else np.int64
+        counts += 1
     indptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(keep.sum(axis=1), out=indptr[1:])
-    W = sp.csr_matrix((weights[keep], indices[keep].astype(index_dtype), indptr), shape=(n, n))
-    del keep, indices, weights
+    np.cumsum(counts, out=indptr[1:])
+    index_dtype = np.int32 if max(n, indptr[-1]) < 2**31 else np.int64
+    cols = np.empty(indptr[-1], dtype=index_dtype)
+    vals = np.empty(indptr[-1], dtype=np.float64)
+    for s, e in _blocks(m, _LIST_BLOCK_ROWS):
+        block_cols, block_vals, block_keep = indices[s:e], weights[s:e], keep[s:e]
+        if self_loops:  # the diagonal first in each row; sorted below
+            block_cols = np.c_[np.arange(s, e), block_cols]
+            block_vals = np.c_[np.ones(e - s), block_vals]
+            block_keep = np.c_[np.ones(e - s, dtype=bool), block_keep]
+        cols[indptr[s]:indptr[e]] = block_cols[block_keep]
+        vals[indptr[s]:indptr[e]] = block_vals[block_keep]
+    if self_loops and m < n:
+        cols[indptr[m]:] = np.arange(m, n)
+        vals[indptr[m]:] = 1.0
+    del keep
+    W = sp.csr_matrix((n, n), dtype=np.float64)
+    W.data, W.indices, W.indptr = vals, cols, indptr.astype(index_dtype, copy=False)
+    W.has_sorted_indices = False
     W.sort_indices()
-    K = W.maximum(W.T.tocsr())
-    del W
-    K.sort_indices()
-    # scipy's result views arrays sized for nnz(W) + nnz(W^T); copies of the used part let
-    # the rest go (1M rows, k = 15: 385 -> 210 MiB before the int64 indices).
-    K.indices, K.indptr = K.indices.astype(np.int64), K.indptr.astype(np.int64)
-    K.data = K.data.copy()
-    return K
+    return W
+
+
+def _blocks(n: int, rows: int):
+    return [(s, min(n, s + rows)) for s in range(0, n, rows)]
 
 
 def _csr_max(rows: np.ndarray, cols: np.ndarray, vals: np.ndarray, n: int) -> sp.csr_matrix:

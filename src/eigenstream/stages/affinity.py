@@ -14,7 +14,12 @@ from typing import Any
 import numpy as np
 
 from eigenstream.core.components import bridge, closest_pairs
-from eigenstream.core.graph import alpha_normalize, connected_components, symmetric_affinity
+from eigenstream.core.graph import (
+    alpha_normalize,
+    connected_components,
+    directed_affinity,
+    union_affinity,
+)
 from eigenstream.core.kernels import adaptive_bandwidths, fill_zero_bandwidths, gaussian_weights
 from eigenstream.errors import InputError
 from eigenstream.io import store
@@ -52,8 +57,10 @@ def _run(ctx: StageContext) -> dict[str, Any]:
         weights = gaussian_weights(distances, sigma, sigma[indices])
         del distances  # not needed from here; the union build is the stage's peak
         bar.update(1)
-        K = symmetric_affinity(indices, weights, n, self_loops=True)
-        del weights
+        W = directed_affinity(indices, weights, n, self_loops=True)
+        del indices, weights  # the lists go before the union
+        K = union_affinity(W)  # max(W, W^T), as core.graph.symmetric_affinity
+        del W
         bar.update(1)
         count, labels = connected_components(K)
         bridges: list = []
