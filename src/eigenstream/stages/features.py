@@ -49,14 +49,10 @@ class FeatureSpec:
         # In row blocks: the float64 intermediates of a whole 200k x 50 float32 table were
         # 160 MiB, the peak of the neighbour stage. Same arithmetic, block by block.
         step = max(1, _APPLY_BLOCK_BYTES // max(1, 8 * values[:1].size))
-        for s in range(0, max(values.shape[0], 1) if values.ndim else 1, step):
-            part = values[s:s + step] if values.ndim else values
-            part = part - self.shift
+        for s in range(0, values.shape[0], step):
+            part = values[s:s + step] - self.shift
             part /= self.scale
-            if values.ndim:
-                out[s:s + step] = part
-            else:
-                out[...] = part
+            out[s:s + step] = part
         return out
 
     def load(self, start: int | None = None, stop: int | None = None) -> np.ndarray:
